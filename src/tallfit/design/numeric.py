@@ -1,0 +1,82 @@
+"""Arrow record batch → float64 design block [X | y], with unusable rows dropped and counted."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from tallfit.design.spec import ModelSpec
+
+
+@dataclass
+class DesignBlock:
+    """One batch as a Fortran-order float64 matrix A = [X | y] of its usable rows."""
+
+    A: np.ndarray  # (m_used, p + 1), Fortran order; last column is the target
+    n_read: int
+    dropped_by_column: dict[str, int] = field(default_factory=dict)
+    keep: np.ndarray | None = None  # boolean mask of used rows, None when every row is used
+
+    @property
+    def n_used(self) -> int:
+        return self.A.shape[0]
+
+
+def column_as_float(col: pa.Array | pa.ChunkedArray) -> np.ndarray:
+    """A numeric or boolean Arrow column as float64 with NaN for nulls (a copy only when needed)."""
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    if pa.types.is_dictionary(col.type):
+        col = col.dictionary_decode()
+    if not pa.types.is_float64(col.type):
+        col = pc.cast(col, pa.float64(), safe=False)
+    return col.to_numpy(zero_copy_only=False)
+
+
+def fill_matrix(batch: pa.RecordBatch, columns: list[str], leading_ones: bool) -> np.ndarray:
+    """Fortran-order float64 matrix of the named columns (a column of ones first if asked)."""
+    m = batch.num_rows
+    k = len(columns) + (1 if leading_ones else 0)
+    M = np.empty((m, k), dtype=np.float64, order="F")
+    j = 0
+    if leading_ones:
+        M[:, 0] = 1.0
+        j = 1
+    for name in columns:
+        M[:, j] = column_as_float(batch.column(name))
+        j += 1
+    return M
+
+
+def finite_rows(M: np.ndarray, names: list[str], first: int) -> tuple[np.ndarray | None, dict[str, int]]:
+    """Mask of rows finite in every column from `first` on, and the per-column count of bad rows."""
+    bad_by_col: dict[str, int] = {}
+    keep = None
+    for j, name in enumerate(names, start=first):
+        ok = np.isfinite(M[:, j])
+        if not ok.all():
+            bad_by_col[name] = int(M.shape[0] - np.count_nonzero(ok))
+            keep = ok if keep is None else keep & ok
+    return keep, bad_by_col
+
+
+def design_block(batch: pa.RecordBatch, spec: ModelSpec) -> DesignBlock:
+    """Build [X | y] for one batch; rows with a missing or non-finite value are dropped and counted."""
+    cols = spec.input_columns
+    A = fill_matrix(batch, cols, spec.intercept)
+    first = 1 if spec.intercept else 0
+    keep, dropped = finite_rows(A, cols, first)
+    if keep is not None:
+        A = np.asfortranarray(A[keep])
+    return DesignBlock(A=A, n_read=batch.num_rows, dropped_by_column=dropped, keep=keep)
+
+
+def feature_block(batch: pa.RecordBatch, spec: ModelSpec) -> tuple[np.ndarray, np.ndarray]:
+    """X for prediction (all rows kept) and a mask of rows whose features are all finite."""
+    X = fill_matrix(batch, list(spec.features), spec.intercept)
+    keep, _ = finite_rows(X, list(spec.features), 1 if spec.intercept else 0)
+    ok = np.ones(X.shape[0], dtype=bool) if keep is None else keep
+    return X, ok

@@ -1,0 +1,83 @@
+"""The local engine: streams a source through the design into accumulators, one or more passes.
+
+This is the only layer that decides how batches are scheduled (here: one reader thread a few
+batches ahead of the thread that folds them); everything above it sees whole passes.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterator
+
+import numpy as np
+import pyarrow as pa
+
+from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.design.numeric import DesignBlock, design_block
+from tallfit.design.spec import ModelSpec, check_columns
+from tallfit.engine.prefetch import prefetched
+from tallfit.errors import DataSourceError, TallfitError
+from tallfit.inputs import source_label
+
+DEFAULT_BATCH_ROWS = 65_536
+
+ProgressHook = Callable[[int, int], None]  # (rows in this batch, file index)
+
+
+def _where(source, chunk) -> str:
+    files = getattr(source, "files", [])
+    name = files[chunk.file_index].path if 0 <= chunk.file_index < len(files) else source.describe()
+    return f"{name}, rows {chunk.row_start}-{chunk.row_start + chunk.batch.num_rows - 1}"
+
+
+def design_blocks(
+    source, spec: ModelSpec, batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None
+) -> Iterator[DesignBlock]:
+    """Design blocks for every batch of the source, decoded one thread ahead of the caller."""
+    check_columns(source.schema, spec.input_columns, spec.target, where=source_label(source))
+
+    def produce() -> Iterator[DesignBlock]:
+        for chunk in source.batches(spec.input_columns, batch_rows):
+            try:
+                block = design_block(chunk.batch, spec)
+            except TallfitError:
+                raise
+            except (pa.ArrowException, ValueError, TypeError) as exc:
+                raise DataSourceError(f"cannot convert {_where(source, chunk)} to numbers: {exc}") from None
+            if progress is not None:
+                progress(chunk.batch.num_rows, chunk.file_index)
+            yield block
+
+    return prefetched(produce(), depth=2)
+
+
+def accumulate(
+    source, spec: ModelSpec, batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None
+) -> FactorAccumulator:
+    """One pass: the triangular factor of [X | y] with counts and ranges."""
+    acc = FactorAccumulator.create(spec.term_names + [spec.target])
+    for block in design_blocks(source, spec, batch_rows, progress):
+        acc.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column)
+    return acc
+
+
+def residual_products_pass(
+    source,
+    spec: ModelSpec,
+    keep: list[int],
+    b_hi: np.ndarray,
+    b_lo: np.ndarray,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    progress: ProgressHook | None = None,
+) -> tuple[np.ndarray, float]:
+    """One pass: Xᵀ(y − Xb) and ‖y − Xb‖², accumulated in double-double over the used rows."""
+    from tallfit.kernels.compensated import accumulate_residual_products
+
+    p = len(keep)
+    g_hi, g_lo, ss = np.zeros(p), np.zeros(p), np.zeros(2)
+    for block in design_blocks(source, spec, batch_rows, progress):
+        if block.n_used == 0:
+            continue
+        X = np.asfortranarray(block.A[:, keep])
+        y = np.ascontiguousarray(block.A[:, -1])
+        accumulate_residual_products(X, y, b_hi, b_lo, g_hi, g_lo, ss)
+    return g_hi + g_lo, float(ss[0] + ss[1])

@@ -1,0 +1,85 @@
+"""From an accumulator to a fitted model: rank checks, coefficients, inference, warnings."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.design.spec import ModelSpec
+from tallfit.errors import AliasedTermsError, DesignError
+from tallfit.results import FitResult, build_result
+from tallfit.solve.exact import DEFAULT_RANK_TOL, ExactSolution, solve_exact
+from tallfit.solve.inference import infer
+
+LOW_DIGITS = 6.0  # common practice: fewer than ~6 trusted digits deserves a remark
+
+
+def _no_rows_message(acc: FactorAccumulator) -> str:
+    if acc.n_read == 0:
+        return "the data has no rows"
+    worst = sorted(acc.dropped_by_column.items(), key=lambda kv: -kv[1])
+    detail = ", ".join(f"{name}: {count}" for name, count in worst[:5])
+    return (
+        f"no usable rows: all {acc.n_read} rows read have a missing or non-finite value in a "
+        f"model column (rows missing per column: {detail}); check those columns or drop them"
+    )
+
+
+def check_aliases(sol: ExactSolution, on_aliased: str) -> list[str]:
+    """Raise for aliased terms unless asked to drop them; return the warnings to show."""
+    if not sol.aliases:
+        return []
+    relations = "; ".join(a.describe() for a in sol.aliases)
+    names = ", ".join(a.term for a in sol.aliases)
+    if on_aliased == "error":
+        raise AliasedTermsError(
+            f"aliased terms: {names} (each is a linear combination of earlier terms, so its "
+            f"effect cannot be separated: {relations}). Remove them, or fit without them by "
+            "passing --drop-aliased (drop_aliased=True)",
+            [a.term for a in sol.aliases],
+        )
+    if on_aliased != "drop":
+        raise ValueError(f"on_aliased must be 'error' or 'drop', not {on_aliased!r}")
+    return [f"fitted without aliased terms {names} ({relations})"]
+
+
+def fit_from_accumulator(
+    spec: ModelSpec,
+    acc: FactorAccumulator,
+    *,
+    on_aliased: str = "error",
+    rank_tol: float = DEFAULT_RANK_TOL,
+    conf_level: float = 0.95,
+    beta: np.ndarray | None = None,
+    rss: float | None = None,
+    **extra: Any,
+) -> FitResult:
+    """Solve and infer from the factor alone (``beta``/``rss`` override the factor's, after refinement)."""
+    if acc.n_used == 0:
+        raise DesignError(_no_rows_message(acc))
+    p = len(acc.names) - 1
+    if acc.n_used <= p:
+        raise DesignError(
+            f"{acc.n_used} usable rows for {p} coefficients: a fit with inference needs more rows "
+            "than coefficients; supply more data or fewer features"
+        )
+    sol = solve_exact(acc.R, acc.names, rank_tol)
+    warnings = check_aliases(sol, on_aliased)
+    if beta is not None:
+        sol.beta = np.asarray(beta, dtype=np.float64)
+    inference = infer(sol.R11, sol.r12, sol.rho, sol.beta, acc.n_used, spec.intercept, conf_level, rss=rss)
+    if acc.n_dropped:
+        warnings.append(
+            f"{acc.n_dropped} of {acc.n_read} rows dropped for missing or non-finite values "
+            f"({', '.join(f'{k}: {v}' for k, v in sorted(acc.dropped_by_column.items()))})"
+        )
+    if sol.trusted_digits < LOW_DIGITS and extra.get("refinement") is None:
+        warnings.append(
+            f"only about {sol.trusted_digits:.0f} significant digits of the coefficients can be "
+            f"trusted (scaled condition number {sol.condition:.2g}); a refinement pass (--refine) "
+            "recovers digits lost to rounding, and removing nearly collinear terms or centring "
+            "features helps more"
+        )
+    return build_result(spec, acc, sol, inference, warnings=warnings, **extra)
