@@ -1,0 +1,7 @@
+"""``python -m synthetic_gen``."""
+
+from __future__ import annotations
+
+from .cli import main
+
+raise SystemExit(main())
