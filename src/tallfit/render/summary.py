@@ -1,0 +1,105 @@
+"""The human summary of a fitted model (plain text, our own layout)."""
+
+from __future__ import annotations
+
+from tallfit.render.numbers import count, pval, sig
+from tallfit.results import FitResult
+
+RULE = "─" * 78
+
+
+def _effects(result: FitResult) -> list[str]:
+    inf = result.inference
+    level = f"{inf.conf_level:.0%}"
+    rows = [("term", "estimate", "std.err", f"{level} interval", "t", "p", "digits")]
+    for i, name in enumerate(result.terms):
+        rows.append(
+            (
+                name,
+                sig(inf.estimate[i], 7),
+                sig(inf.std_error[i], 3),
+                f"{sig(inf.ci_low[i], 6)} … {sig(inf.ci_high[i], 6)}",
+                sig(inf.t[i], 4),
+                pval(inf.p_value[i]),
+                f"{result.digits[i]:.0f}",
+            )
+        )
+    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
+    out = []
+    for r in rows:
+        cells = [r[0].ljust(widths[0])] + [r[c].rjust(widths[c]) for c in range(1, len(r))]
+        out.append("  " + "  ".join(cells))
+    out.insert(1, "  " + "  ".join("·" * w for w in widths))
+    return out
+
+
+def _cautions(result: FitResult) -> list[str]:
+    k = len(result.terms) - (1 if result.spec.intercept else 0)
+    lines = [
+        "association, not causation: an estimate is the change in the target that goes with a unit",
+        "  change of the term in these data, others held fixed, not what an intervention would do",
+        "std.err assumes independent rows of equal noise; log rows are rarely independent, so",
+        "  these errors are likely too small (robust or clustered errors need a second pass)",
+        "predictions outside the fitted range of the features (see feature ranges) extrapolate",
+    ]
+    if k > 1:
+        lines.append(
+            f"{k} terms tested at once: about {0.05 * k:.1f} would pass p < 0.05 by chance alone if none "
+            "mattered;"
+        )
+        lines.append("  adjust (Holm, Benjamini–Hochberg) before screening many terms")
+    return lines
+
+
+def render_text(result: FitResult) -> str:
+    inf = result.inference
+    spec = result.spec
+    acc = result.accumulator
+    head = f"tallfit ▸ {spec.target} on {len(result.terms)} terms"
+    out = [head + result.solver.rjust(78 - len(head)), RULE]
+    if result.source.get("description"):
+        out.append(f"data      {result.source['description']}")
+    dropped = ""
+    if acc.n_dropped:
+        parts = ", ".join(f"{k} {count(v)}" for k, v in sorted(acc.dropped_by_column.items()))
+        dropped = f" · {count(acc.n_dropped)} dropped ({parts})"
+    out.append(f"rows      {count(acc.n_read)} read · {count(inf.n_used)} used{dropped}")
+    out.append("")
+    out.append(f"effects   change in {spec.target} per unit of each term, the others held fixed")
+    out.extend(_effects(result))
+    out.append("")
+    r2_kind = "R²" if inf.centered else "R² (uncentred, no intercept)"
+    out.append(
+        f"fit       residual sd {sig(inf.residual_std, 6)} on {count(inf.df_resid)} df · "
+        f"{r2_kind} {inf.r_squared:.6f} · adjusted {inf.adj_r_squared:.6f}"
+    )
+    if inf.df_model > 0:
+        out.append(
+            f"          all terms at once: F {sig(inf.f_statistic, 6)} on {inf.df_model} and "
+            f"{count(inf.df_resid)} df, p {pval(inf.f_p_value)}"
+        )
+    out.append(
+        f"          log-likelihood {sig(inf.log_likelihood, 9)} · AIC {sig(inf.aic, 9)} · BIC {sig(inf.bic, 9)}"
+    )
+    out.append(
+        f"numerics  scaled condition number {sig(result.condition_number, 3)} · about "
+        f"{result.trusted_digits:.0f} trusted digits in every estimate"
+    )
+    if result.refinement:
+        changes = ", ".join(f"{c:.1e}" for c in result.refinement["max_relative_change"])
+        out.append(f"          refined in {result.refinement['passes']} passes (largest relative corrections {changes})")
+    ranges = result.feature_ranges()
+    if ranges:
+        out.append("")
+        out.append("feature ranges fitted")
+        w = max(len(f) for f in ranges)
+        for f, (lo, hi) in ranges.items():
+            out.append(f"  {f.ljust(w)}  {sig(lo)} … {sig(hi)}")
+    if result.warnings:
+        out.append("")
+        out.append("notes")
+        out.extend(f"  ! {w}" for w in result.warnings)
+    out.append("")
+    out.append("read with care")
+    out.extend(f"  · {c}" if not c.startswith("  ") else f"  {c}" for c in _cautions(result))
+    return "\n".join(out) + "\n"

@@ -1,0 +1,146 @@
+"""The fitted-model value: terms, estimates, covariance, fit statistics and provenance.
+
+A :class:`FitResult` is built once from the accumulator (see ``solve``) and is what every face
+shows: the summary, ``--json``, the model file and prediction. ``to_dict`` is the JSON contract
+documented in the README.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.design.spec import ModelSpec
+from tallfit.solve.exact import Alias, ExactSolution
+from tallfit.solve.inference import Inference
+
+
+@dataclass
+class FitResult:
+    """A fitted linear model with its inference and the state needed to merge or update it."""
+
+    spec: ModelSpec
+    terms: list[str]  # kept design terms, in design order
+    inference: Inference
+    aliased: list[Alias]
+    accumulator: FactorAccumulator
+    condition_number: float
+    digits: np.ndarray  # estimated significant digits per term
+    solver: str = "householder-tsqr"
+    refinement: dict[str, Any] | None = None
+    source: dict[str, Any] = field(default_factory=dict)
+    options: dict[str, Any] = field(default_factory=dict)
+    warnings: list[str] = field(default_factory=list)
+
+    # -- convenient views -------------------------------------------------------------------
+    @property
+    def coef(self) -> dict[str, float]:
+        """Estimates by term name."""
+        return {t: float(b) for t, b in zip(self.terms, self.inference.estimate)}
+
+    @property
+    def trusted_digits(self) -> float:
+        return float(self.digits.min()) if self.digits.size else 15.9
+
+    @property
+    def dropped_rows(self) -> dict[str, Any]:
+        acc = self.accumulator
+        return {"total": int(acc.n_dropped), "by_column": dict(acc.dropped_by_column)}
+
+    def feature_ranges(self) -> dict[str, tuple[float, float]]:
+        """Observed [min, max] of each feature over the used rows."""
+        acc = self.accumulator
+        idx = {name: i for i, name in enumerate(acc.names)}
+        return {f: (float(acc.col_min[idx[f]]), float(acc.col_max[idx[f]])) for f in self.spec.features}
+
+    def term_table(self) -> list[dict[str, Any]]:
+        inf = self.inference
+        return [
+            {
+                "name": name,
+                "estimate": float(inf.estimate[i]),
+                "std_error": float(inf.std_error[i]),
+                "t": float(inf.t[i]),
+                "p_value": float(inf.p_value[i]),
+                "ci_low": float(inf.ci_low[i]),
+                "ci_high": float(inf.ci_high[i]),
+                "digits": round(float(self.digits[i]), 1),
+            }
+            for i, name in enumerate(self.terms)
+        ]
+
+    def to_dict(self) -> dict[str, Any]:
+        """The machine-readable result (the ``show --json`` contract)."""
+        inf = self.inference
+        return {
+            "target": self.spec.target,
+            "intercept": self.spec.intercept,
+            "terms": self.term_table(),
+            "conf_level": inf.conf_level,
+            "n_read": int(self.accumulator.n_read),
+            "n_used": inf.n_used,
+            "dropped_rows": self.dropped_rows,
+            "df_model": inf.df_model,
+            "df_resid": inf.df_resid,
+            "residual_std": inf.residual_std,
+            "rss": inf.rss,
+            "tss": inf.tss,
+            "r_squared": inf.r_squared,
+            "r_squared_kind": "centered" if inf.centered else "uncentered",
+            "adj_r_squared": inf.adj_r_squared,
+            "f_statistic": inf.f_statistic,
+            "f_p_value": inf.f_p_value,
+            "log_likelihood": inf.log_likelihood,
+            "aic": inf.aic,
+            "bic": inf.bic,
+            "covariance": [[float(v) for v in row] for row in inf.cov],
+            "aliased_terms": [{"term": a.term, "relation": a.describe()} for a in self.aliased],
+            "condition_number": self.condition_number,
+            "trusted_digits": round(self.trusted_digits, 1),
+            "solver": self.solver,
+            "refinement": self.refinement,
+            "feature_ranges": {k: list(v) for k, v in self.feature_ranges().items()},
+            "source": self.source,
+            "warnings": list(self.warnings),
+        }
+
+    def summary(self) -> str:
+        """The human summary as plain text."""
+        from tallfit.render.summary import render_text
+
+        return render_text(self)
+
+    def predict(self, data, **kwargs):
+        """Predictions for new data; see :func:`tallfit.predict`."""
+        from tallfit.scoring import predict
+
+        return predict(self, data, **kwargs)
+
+    def save(self, path) -> None:
+        from tallfit.modelfile import save_model
+
+        save_model(self, path)
+
+
+def build_result(
+    spec: ModelSpec,
+    acc: FactorAccumulator,
+    sol: ExactSolution,
+    inference: Inference,
+    **extra: Any,
+) -> FitResult:
+    """Assemble a FitResult from the pieces the solvers produced."""
+    names = acc.names[:-1]
+    return FitResult(
+        spec=spec,
+        terms=[names[j] for j in sol.keep],
+        inference=inference,
+        aliased=list(sol.aliases),
+        accumulator=acc,
+        condition_number=float(sol.condition),
+        digits=np.asarray(sol.digits, dtype=float),
+        **extra,
+    )

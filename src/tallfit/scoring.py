@@ -1,0 +1,194 @@
+"""Streaming scoring: new rows through a fitted model, in bounded memory, to Parquet or CSV.
+
+Point prediction ŷ = xᵀβ. With intervals, the standard error of the fitted mean is
+s·‖R11⁻ᵀx‖ (= √(xᵀ Var(β) x)) and of a new observation √(s² + se_fit²), with Student t
+quantiles on the model's residual degrees of freedom (Seber & Lee, Linear Regression Analysis,
+§5.1-5.2). Rows with a missing feature get a null prediction; no row is dropped, so output rows
+line up with input rows.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+from scipy import stats
+from scipy.linalg import solve_triangular
+
+from tallfit.atomic import atomic_path, check_writable
+from tallfit.design.numeric import feature_block
+from tallfit.design.spec import check_columns
+from tallfit.engine.local import DEFAULT_BATCH_ROWS
+from tallfit.engine.prefetch import prefetched
+from tallfit.errors import ColumnNotFoundError, OutputError
+from tallfit.results import FitResult
+from tallfit.solve.exact import reduce_factor
+from tallfit.inputs import as_source, source_label
+
+
+@dataclass
+class PredictionReport:
+    """What a prediction run wrote, and what the user should know about it."""
+
+    rows: int = 0
+    rows_missing_features: int = 0
+    rows_outside_training_range: int = 0
+    out: str | None = None
+    columns: list[str] = field(default_factory=list)
+
+    def warnings(self) -> list[str]:
+        w = []
+        if self.rows_missing_features:
+            w.append(f"{self.rows_missing_features} rows had a missing feature and got a null prediction")
+        if self.rows_outside_training_range:
+            w.append(
+                f"{self.rows_outside_training_range} rows lie outside the range of the fitted data in at "
+                "least one feature: those predictions extrapolate the straight-line model"
+            )
+        return w
+
+
+class _Scorer:
+    """Per-batch computation of predictions (and interval half-widths) for one model."""
+
+    def __init__(self, model: FitResult, intervals: bool, level: float) -> None:
+        self.model = model
+        spec = model.spec
+        names = spec.term_names
+        self.keep = [names.index(t) for t in model.terms]
+        self.beta = model.inference.estimate
+        self.intervals = intervals
+        lo, hi = zip(*model.feature_ranges().values()) if spec.features else ((), ())
+        self.lo, self.hi = np.asarray(lo), np.asarray(hi)
+        self.first = 1 if spec.intercept else 0
+        if intervals:
+            acc = model.accumulator
+            Rr = reduce_factor(acc.R, self.keep)
+            p = len(self.keep)
+            self.R11 = Rr[:p, :p]
+            self.s = model.inference.residual_std
+            self.q = float(stats.t.ppf(0.5 + level / 2.0, model.inference.df_resid))
+
+    def score(self, batch: pa.RecordBatch, report: PredictionReport) -> dict[str, np.ndarray]:
+        X, ok = feature_block(batch, self.model.spec)
+        Xk = X[:, self.keep]
+        pred = Xk @ self.beta
+        pred[~ok] = np.nan
+        report.rows += len(pred)
+        report.rows_missing_features += int(np.count_nonzero(~ok))
+        if self.lo.size:
+            F = X[ok, self.first :]
+            outside = ((F < self.lo) | (F > self.hi)).any(axis=1)
+            report.rows_outside_training_range += int(np.count_nonzero(outside))
+        cols = {"prediction": pred}
+        if self.intervals:
+            Z = solve_triangular(self.R11, np.nan_to_num(Xk).T, trans="T")
+            se_fit = self.s * np.sqrt(np.sum(Z * Z, axis=0))
+            se_new = np.sqrt(self.s**2 + se_fit**2)
+            cols["ci_low"] = pred - self.q * se_fit
+            cols["ci_high"] = pred + self.q * se_fit
+            cols["pi_low"] = pred - self.q * se_new
+            cols["pi_high"] = pred + self.q * se_new
+        return cols
+
+
+def _out_format(out: Path, out_format: str | None) -> str:
+    if out_format:
+        fmt = out_format.lower()
+    else:
+        suffix = "".join(out.suffixes[-2:]).lower()
+        fmt = "csv" if ".csv" in suffix else "parquet" if suffix.endswith((".parquet", ".pq")) else ""
+    if fmt not in ("parquet", "csv"):
+        raise OutputError(
+            f"cannot tell the output format of {str(out)!r}: use a .parquet or .csv name, or give the format"
+        )
+    return fmt
+
+
+def _to_array(values: np.ndarray) -> pa.Array:
+    return pa.array(values, type=pa.float64(), from_pandas=True)  # NaN → null
+
+
+def predict(
+    model: FitResult,
+    data: Any,
+    *,
+    out: str | os.PathLike | None = None,
+    intervals: bool = False,
+    level: float | None = None,
+    passthrough: list[str] | tuple[str, ...] = (),
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    format: str | None = None,
+    delimiter: str = ",",
+    out_format: str | None = None,
+    progress=None,
+) -> PredictionReport | pa.Table:
+    """Score `data` with `model`.
+
+    With ``out``, stream to that Parquet or CSV file (written atomically) and return a
+    :class:`PredictionReport`; without, return a pyarrow Table of all predictions (which then
+    must fit in memory). Columns: the ``passthrough`` columns, ``prediction`` and, with
+    ``intervals``, ``ci_low``/``ci_high`` (mean response) and ``pi_low``/``pi_high`` (a new row).
+    """
+    level = model.inference.conf_level if level is None else float(level)
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"interval level must be between 0 and 1 (got {level})")
+    target = None
+    fmt = None
+    if out is not None:
+        target = check_writable(out)
+        fmt = _out_format(target, out_format)
+    source = as_source(data, format=format, delimiter=delimiter)
+    spec = model.spec
+    where = source_label(source)
+    check_columns(source.schema, list(spec.features), None, where=where)
+    for col in passthrough:
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    read_cols = list(dict.fromkeys(list(spec.features) + list(passthrough)))
+    scorer = _Scorer(model, intervals, level)
+    report = PredictionReport(out=str(target) if target else None)
+
+    def tables():
+        for chunk in source.batches(read_cols, batch_rows):
+            cols = scorer.score(chunk.batch, report)
+            arrays = [chunk.batch.column(c) for c in passthrough] + [_to_array(v) for v in cols.values()]
+            names = list(passthrough) + list(cols)
+            if progress is not None:
+                progress(chunk.batch.num_rows, chunk.file_index)
+            yield pa.RecordBatch.from_arrays(arrays, names=names)
+
+    if target is None:
+        batches = list(tables())
+        if not batches:
+            return pa.table({"prediction": pa.array([], pa.float64())})
+        return pa.Table.from_batches(batches)
+    with atomic_path(target) as tmp:
+        writer = None
+        try:
+            for batch in prefetched(tables(), depth=2):
+                if writer is None:
+                    writer = _open_writer(tmp, fmt, batch.schema)
+                writer.write_batch(batch)
+                report.columns = batch.schema.names
+            if writer is None:
+                empty = pa.schema([("prediction", pa.float64())])
+                writer = _open_writer(tmp, fmt, empty)
+        finally:
+            if writer is not None:
+                writer.close()
+    return report
+
+
+def _open_writer(path: Path, fmt: str, schema: pa.Schema):
+    if fmt == "parquet":
+        import pyarrow.parquet as pq
+
+        return pq.ParquetWriter(str(path), schema, compression="zstd")
+    import pyarrow.csv as pacsv
+
+    return pacsv.CSVWriter(str(path), schema)
