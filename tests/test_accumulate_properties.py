@@ -97,3 +97,17 @@ def test_accumulator_state_round_trips_exactly():
     back = FactorAccumulator.from_state(acc.to_state())
     np.testing.assert_array_equal(back.R, acc.canonical_R())
     assert back.n_used == acc.n_used and back.names == acc.names
+
+
+def test_extra_columns_follow_the_used_rows():
+    from tallfit.design.spec import ModelSpec
+    from tallfit.engine.local import design_blocks
+    from tallfit.inputs import as_source
+
+    x = np.array([1.0, np.nan, 3.0, 4.0, 5.0])
+    table = pa.table({"x": x, "y": x * 2, "host": ["a", "b", "c", "d", "e"]})
+    blocks = list(design_blocks(as_source(table), ModelSpec("y", ("x",)), batch_rows=2, extra_columns=["host"]))
+    hosts = [h for b in blocks for h in b.extra["host"].to_pylist()]
+    assert hosts == ["a", "c", "d", "e"]
+    assert sum(b.n_used for b in blocks) == 4
+    assert [b.row_start for b in blocks] == [0, 2, 4]

@@ -19,6 +19,9 @@ class DesignBlock:
     n_read: int
     dropped_by_column: dict[str, int] = field(default_factory=dict)
     keep: np.ndarray | None = None  # boolean mask of used rows, None when every row is used
+    extra: dict[str, pa.Array] = field(default_factory=dict)  # extra columns, used rows only
+    file_index: int = -1
+    row_start: int = 0
 
     @property
     def n_used(self) -> int:

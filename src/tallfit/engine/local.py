@@ -15,7 +15,7 @@ from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.numeric import DesignBlock, design_block
 from tallfit.design.spec import ModelSpec, check_columns
 from tallfit.engine.prefetch import prefetched
-from tallfit.errors import DataSourceError, TallfitError
+from tallfit.errors import ColumnNotFoundError, DataSourceError, TallfitError
 from tallfit.inputs import source_label
 
 DEFAULT_BATCH_ROWS = 65_536
@@ -30,19 +30,40 @@ def _where(source, chunk) -> str:
 
 
 def design_blocks(
-    source, spec: ModelSpec, batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None
+    source,
+    spec: ModelSpec,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    progress: ProgressHook | None = None,
+    extra_columns: tuple[str, ...] | list[str] = (),
 ) -> Iterator[DesignBlock]:
-    """Design blocks for every batch of the source, decoded one thread ahead of the caller."""
-    check_columns(source.schema, spec.input_columns, spec.target, where=source_label(source))
+    """Design blocks for every batch of the source, decoded one thread ahead of the caller.
+
+    ``extra_columns`` (a fold key, a cluster id, pass-through ids) are read in the same scan and
+    handed over in ``block.extra`` as Arrow arrays restricted to the used rows. Each block also
+    carries where it came from (``file_index``, ``row_start``) for messages.
+    """
+    where = source_label(source)
+    check_columns(source.schema, spec.input_columns, spec.target, where=where)
+    for col in extra_columns:
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    extra = [c for c in dict.fromkeys(extra_columns) if c not in spec.input_columns]
+    read = spec.input_columns + extra
 
     def produce() -> Iterator[DesignBlock]:
-        for chunk in source.batches(spec.input_columns, batch_rows):
+        for chunk in source.batches(read, batch_rows):
             try:
                 block = design_block(chunk.batch, spec)
             except TallfitError:
                 raise
             except (pa.ArrowException, ValueError, TypeError) as exc:
                 raise DataSourceError(f"cannot convert {_where(source, chunk)} to numbers: {exc}") from None
+            block.file_index, block.row_start = chunk.file_index, chunk.row_start
+            if extra_columns:
+                mask = None if block.keep is None else pa.array(block.keep)
+                for col in extra_columns:
+                    arr = chunk.batch.column(col)
+                    block.extra[col] = arr if mask is None else arr.filter(mask)
             if progress is not None:
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
