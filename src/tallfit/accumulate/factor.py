@@ -58,6 +58,14 @@ class FactorAccumulator:
         for name, count in (dropped or {}).items():
             self.dropped_by_column[name] = self.dropped_by_column.get(name, 0) + count
 
+    def update_block(self, block) -> None:
+        """Fold a DesignBlock (its used rows, read count and per-column drops).
+
+        Prefer this to ``update``: it is where designs whose columns grow during the scan
+        (categorical levels first seen late) are aligned with the factor.
+        """
+        self.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column)
+
     def merge(self, other: "FactorAccumulator") -> "FactorAccumulator":
         """A new accumulator over the rows of both (neither input is changed)."""
         if other.names != self.names:

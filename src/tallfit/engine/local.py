@@ -77,7 +77,7 @@ def accumulate(
     """One pass: the triangular factor of [X | y] with counts and ranges."""
     acc = FactorAccumulator.create(spec.term_names + [spec.target])
     for block in design_blocks(source, spec, batch_rows, progress):
-        acc.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column)
+        acc.update_block(block)
     return acc
 
 
