@@ -13,7 +13,10 @@ import os
 from collections.abc import Sequence
 from typing import Any
 
-from tallfit.design.spec import ModelSpec
+from tallfit.design.build import make_spec
+from tallfit.design.categorical import WIDE_LEVELS
+from tallfit.design.coding import finalize_coding
+from tallfit.design.design import Design
 from tallfit.engine import local
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook
 from tallfit.modelfile import load_model, save_model
@@ -37,6 +40,17 @@ def fit(
     format: str | None = None,
     delimiter: str = ",",
     progress: ProgressHook | None = None,
+    categorical: Sequence[str] = (),
+    derive: Sequence[str] = (),
+    interactions: Sequence[str] = (),
+    polynomials: dict[str, int] | None = None,
+    where: str | None = None,
+    weights: str | None = None,
+    weight_kind: str = "analytic",
+    missing: dict[str, str] | None = None,
+    reference: dict[str, str] | None = None,
+    min_level_count: int | None = None,
+    max_levels: int | None = None,
 ) -> FitResult:
     """Fit ``target ~ features`` by exact least squares, streaming the data once.
 
@@ -62,13 +76,43 @@ def fit(
         Level of the confidence intervals.
     rank_tol
         Sine of the angle below which a term counts as a combination of earlier terms.
+    categorical
+        Columns (string, dictionary, boolean or integer) entered as indicator columns against a
+        reference level; levels are discovered while streaming.
+    derive, interactions, polynomials
+        Derived features: ``"NAME = SQL expression"`` strings; all pairwise products of the
+        listed columns; ``{column: degree}`` powers 2..degree.
+    where
+        SQL condition selecting the rows used.
+    weights, weight_kind
+        Weight column; ``"analytic"`` (precision weights: each row one observation) or
+        ``"frequency"`` (a row of weight w stands for w rows).
+    missing
+        Per-column policy for missing/non-finite values: ``"drop"`` (default), ``"fail"``,
+        ``"fill:VALUE"``, ``"indicator[:VALUE]"`` (fill and add a 0/1 column); key ``"*"`` for all.
+    reference, min_level_count, max_levels
+        Reference level per categorical column (default: the most frequent); levels with fewer
+        rows, or beyond the most frequent ``max_levels``, are merged into one "(other)" level.
     """
-    spec = ModelSpec(target=target, features=tuple(features), intercept=intercept)
+    spec = make_spec(
+        target, features, intercept=intercept, categorical=categorical, derive=derive,
+        interactions=interactions, polynomials=polynomials, where=where, weights=weights,
+        weight_kind=weight_kind, missing=missing,
+    )
     if int(batch_rows) < 1:
         raise ValueError("batch_rows must be at least 1")
     source = as_source(data, format=format, delimiter=delimiter)
-    acc = local.accumulate(source, spec, batch_rows, progress)
+    design = Design(spec)
+    acc = local.accumulate(source, spec, batch_rows, progress, design=design)
+    acc, coding = finalize_coding(acc, spec, reference, min_level_count, max_levels)
+    notes = [
+        f"categorical column {c!r} has more than {WIDE_LEVELS} levels as dense indicator columns; "
+        "a key of that many values is better absorbed (fixed effects) than expanded"
+        for c in design.wide_categoricals()
+    ]
     options = {
+        "min_level_count": min_level_count,
+        "max_levels": max_levels,
         "batch_rows": int(batch_rows),
         "drop_aliased": bool(drop_aliased),
         "rank_tol": float(rank_tol),
@@ -81,7 +125,9 @@ def fit(
         source={"description": source.describe(), **source.fingerprint()},
         options=options,
     )
+    common["coding"] = coding
     result = fit_from_accumulator(spec, acc, **common)
+    result.warnings.extend(notes)
     passes = 2 if refine is True else int(refine)
     if passes > 0:
         result = _refined(source, spec, acc, result, passes, batch_rows, progress, common)
@@ -97,7 +143,9 @@ def _refined(source, spec, acc, first: FitResult, passes, batch_rows, progress, 
     sol = solve_exact(acc.R, acc.names, common["rank_tol"])
 
     def one_pass(b_hi, b_lo):
-        return local.residual_products_pass(source, spec, sol.keep, b_hi, b_lo, batch_rows, progress)
+        return local.residual_products_pass(
+            source, spec, sol.keep, b_hi, b_lo, batch_rows, progress, coding=common.get("coding")
+        )
 
     beta, info, digits = refine_beta(one_pass, sol.R11, sol.beta, passes)
     result = fit_from_accumulator(

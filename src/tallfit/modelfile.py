@@ -89,9 +89,11 @@ def model_to_dict(result: FitResult) -> dict:
             "digits": result.digits,
             "solver": result.solver,
             "refinement": result.refinement,
+            "iterations": result.iterations,
             "source": result.source,
             "options": result.options,
             "warnings": result.warnings,
+            "coding": result.coding,
         },
         "accumulator": result.accumulator.to_state(),
     }
@@ -140,9 +142,11 @@ def model_from_dict(doc: Any, where: str = "model") -> FitResult:
             digits=_floats(m["digits"]),
             solver=str(m["solver"]),
             refinement=m.get("refinement"),
+            iterations=m.get("iterations"),
             source=m.get("source") or {},
             options=m.get("options") or {},
             warnings=[str(w) for w in m.get("warnings") or []],
+            coding=m.get("coding"),
         )
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelFileError(f"{where} is damaged or incomplete ({type(exc).__name__}: {exc})") from None

@@ -34,6 +34,8 @@ class FitResult:
     source: dict[str, Any] = field(default_factory=dict)
     options: dict[str, Any] = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
+    iterations: dict[str, Any] | None = None  # an iterative solver's settings, stop reason and history
+    coding: dict[str, Any] | None = None  # final coding of categorical columns (design/coding.py)
 
     # -- convenient views -------------------------------------------------------------------
     @property
@@ -55,6 +57,21 @@ class FitResult:
         acc = self.accumulator
         idx = {name: i for i, name in enumerate(acc.names)}
         return {f: (float(acc.col_min[idx[f]]), float(acc.col_max[idx[f]])) for f in self.spec.features}
+
+    def weights_info(self) -> dict[str, Any] | None:
+        spec, acc = self.spec, self.accumulator
+        if not spec.weights:
+            return None
+        return {"column": spec.weights, "kind": spec.weight_kind, "sum": acc.weight_sum}
+
+    def levels_info(self) -> dict[str, Any]:
+        """Per categorical column: reference level, merged levels, and rows per level."""
+        if not self.coding:
+            return {}
+        return {
+            col: {"reference": c["reference"], "merged_into_other": c["merged"], "counts": c["counts"]}
+            for col, c in self.coding["columns"].items()
+        }
 
     def term_table(self) -> list[dict[str, Any]]:
         inf = self.inference
@@ -102,8 +119,12 @@ class FitResult:
             "trusted_digits": round(self.trusted_digits, 1),
             "solver": self.solver,
             "refinement": self.refinement,
+            "iterations": self.iterations,
             "feature_ranges": {k: list(v) for k, v in self.feature_ranges().items()},
             "source": self.source,
+            "weights": self.weights_info(),
+            "levels": self.levels_info(),
+            "filled_values": dict(self.accumulator.filled),
             "warnings": list(self.warnings),
         }
 

@@ -20,9 +20,8 @@ from scipy import stats
 from scipy.linalg import solve_triangular
 
 from tallfit.atomic import atomic_path, check_writable
-from tallfit.design.numeric import feature_block
-from tallfit.design.spec import check_columns
-from tallfit.engine.local import DEFAULT_BATCH_ROWS
+from tallfit.design.design import Design, check_design_columns, prediction_columns
+from tallfit.engine.local import DEFAULT_BATCH_ROWS, chunk_label
 from tallfit.engine.prefetch import prefetched
 from tallfit.errors import ColumnNotFoundError, OutputError
 from tallfit.results import FitResult
@@ -37,6 +36,7 @@ class PredictionReport:
     rows: int = 0
     rows_missing_features: int = 0
     rows_outside_training_range: int = 0
+    rows_unseen_levels: int = 0
     out: str | None = None
     columns: list[str] = field(default_factory=list)
 
@@ -44,6 +44,11 @@ class PredictionReport:
         w = []
         if self.rows_missing_features:
             w.append(f"{self.rows_missing_features} rows had a missing feature and got a null prediction")
+        if self.rows_unseen_levels:
+            w.append(
+                f"{self.rows_unseen_levels} rows had a categorical level the model never saw and were "
+                "scored as the level the unseen-level policy names"
+            )
         if self.rows_outside_training_range:
             w.append(
                 f"{self.rows_outside_training_range} rows lie outside the range of the fitted data in at "
@@ -55,16 +60,18 @@ class PredictionReport:
 class _Scorer:
     """Per-batch computation of predictions (and interval half-widths) for one model."""
 
-    def __init__(self, model: FitResult, intervals: bool, level: float) -> None:
+    def __init__(self, model: FitResult, intervals: bool, level: float, unseen: str = "error") -> None:
         self.model = model
         spec = model.spec
-        names = spec.term_names
+        self.design = Design(spec, coding=model.coding, unseen=unseen, predicting=True)
+        names = self.design.names[:-1]
         self.keep = [names.index(t) for t in model.terms]
         self.beta = model.inference.estimate
         self.intervals = intervals
         lo, hi = zip(*model.feature_ranges().values()) if spec.features else ((), ())
         self.lo, self.hi = np.asarray(lo), np.asarray(hi)
-        self.first = 1 if spec.intercept else 0
+        self.first = 1 if spec.has_intercept_column else 0
+        self.n_features = len(spec.features)
         if intervals:
             acc = model.accumulator
             Rr = reduce_factor(acc.R, self.keep)
@@ -73,15 +80,15 @@ class _Scorer:
             self.s = model.inference.residual_std
             self.q = float(stats.t.ppf(0.5 + level / 2.0, model.inference.df_resid))
 
-    def score(self, batch: pa.RecordBatch, report: PredictionReport) -> dict[str, np.ndarray]:
-        X, ok = feature_block(batch, self.model.spec)
+    def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
+        X, ok = self.design.features(batch, label)
         Xk = X[:, self.keep]
         pred = Xk @ self.beta
         pred[~ok] = np.nan
         report.rows += len(pred)
         report.rows_missing_features += int(np.count_nonzero(~ok))
         if self.lo.size:
-            F = X[ok, self.first :]
+            F = X[ok, self.first : self.first + self.n_features]
             outside = ((F < self.lo) | (F > self.hi)).any(axis=1)
             report.rows_outside_training_range += int(np.count_nonzero(outside))
         cols = {"prediction": pred}
@@ -126,6 +133,7 @@ def predict(
     delimiter: str = ",",
     out_format: str | None = None,
     progress=None,
+    unseen: str = "error",
 ) -> PredictionReport | pa.Table:
     """Score `data` with `model`.
 
@@ -133,6 +141,9 @@ def predict(
     :class:`PredictionReport`; without, return a pyarrow Table of all predictions (which then
     must fit in memory). Columns: the ``passthrough`` columns, ``prediction`` and, with
     ``intervals``, ``ci_low``/``ci_high`` (mean response) and ``pi_low``/``pi_high`` (a new row).
+    ``unseen``: what to do with a categorical level the model never saw: ``"error"`` (default),
+    ``"reference"`` (score as the reference level) or ``"other"`` (as the merged other level, if
+    the model has one; else the reference), counted in the report.
     """
     level = model.inference.conf_level if level is None else float(level)
     if not 0.0 < level < 1.0:
@@ -145,17 +156,18 @@ def predict(
     source = as_source(data, format=format, delimiter=delimiter)
     spec = model.spec
     where = source_label(source)
-    check_columns(source.schema, list(spec.features), None, where=where)
+    check_design_columns(spec, source.schema, where, predicting=True)
     for col in passthrough:
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
-    read_cols = list(dict.fromkeys(list(spec.features) + list(passthrough)))
-    scorer = _Scorer(model, intervals, level)
+    read_cols = list(dict.fromkeys(prediction_columns(spec) + list(passthrough)))
+    scorer = _Scorer(model, intervals, level, unseen)
     report = PredictionReport(out=str(target) if target else None)
 
     def tables():
         for chunk in source.batches(read_cols, batch_rows):
-            cols = scorer.score(chunk.batch, report)
+            cols = scorer.score(chunk.batch, report, chunk_label(source, chunk))
+            report.rows_unseen_levels = sum(c.unseen_rows for c in scorer.design.coders)
             arrays = [chunk.batch.column(c) for c in passthrough] + [_to_array(v) for v in cols.values()]
             names = list(passthrough) + list(cols)
             if progress is not None:

@@ -6,8 +6,13 @@ solvers. Merging is associative and, up to rounding, commutative, so any groupin
 files or workers gives the same factor.
 
 Besides R the accumulator keeps what inference and later checks need and R cannot give: the
-row counts (read, used, dropped per column) and each feature's observed range (to warn about
-extrapolation at prediction time).
+row counts (read, used, dropped per column and reason), each column's observed range (to warn
+about extrapolation), the weight sums of a weighted fit, and the rows per categorical level.
+
+Columns can be added while streaming (a categorical level first seen late): a new column is a
+zero column for every earlier row, so inserting a zero row and column into R keeps it exact
+(../shared/NUMERICS.md). Any linear recoding of the columns (reference level, merged levels,
+another column order) is applied to the factor as triu(qr(R·T)), since (RT)'(RT) = T'A'AT.
 """
 
 from __future__ import annotations
@@ -15,8 +20,15 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.linalg import qr
 
 from tallfit.kernels.tsqr import fold_rows, merge_factors, normalize_signs
+
+
+def _add_counts(into: dict, other: dict) -> dict:
+    for name, count in other.items():
+        into[name] = into.get(name, 0) + count
+    return into
 
 
 @dataclass
@@ -30,6 +42,10 @@ class FactorAccumulator:
     dropped_by_column: dict[str, int] = field(default_factory=dict)
     col_min: np.ndarray | None = None
     col_max: np.ndarray | None = None
+    weight_sum: float | None = None
+    weight_log_sum: float | None = None
+    level_counts: dict[str, dict[str, int]] = field(default_factory=dict)
+    filled: dict[str, int] = field(default_factory=dict)
 
     @classmethod
     def create(cls, names: list[str]) -> "FactorAccumulator":
@@ -45,42 +61,113 @@ class FactorAccumulator:
     def k(self) -> int:
         return len(self.names)
 
-    def update(self, A: np.ndarray, n_read: int | None = None, dropped: dict[str, int] | None = None) -> None:
+    # -- update ---------------------------------------------------------------------------------
+    def update(self, A: np.ndarray, n_read: int | None = None, dropped: dict[str, int] | None = None,
+               col_min: np.ndarray | None = None, col_max: np.ndarray | None = None) -> None:
         """Fold the usable rows A (m × k) into the factor and the counts."""
         if A.shape[1] != self.k:
             raise ValueError(f"block has {A.shape[1]} columns, accumulator has {self.k}")
         if A.shape[0]:
             self.R = fold_rows(self.R, A)
-            np.minimum(self.col_min, A.min(axis=0), out=self.col_min)
-            np.maximum(self.col_max, A.max(axis=0), out=self.col_max)
+            np.minimum(self.col_min, A.min(axis=0) if col_min is None else col_min, out=self.col_min)
+            np.maximum(self.col_max, A.max(axis=0) if col_max is None else col_max, out=self.col_max)
         self.n_used += A.shape[0]
         self.n_read += A.shape[0] if n_read is None else n_read
-        for name, count in (dropped or {}).items():
-            self.dropped_by_column[name] = self.dropped_by_column.get(name, 0) + count
+        _add_counts(self.dropped_by_column, dropped or {})
 
     def update_block(self, block) -> None:
-        """Fold a DesignBlock (its used rows, read count and per-column drops).
+        """Fold a DesignBlock: its used rows, counts, ranges, weights and level counts.
 
         Prefer this to ``update``: it is where designs whose columns grow during the scan
         (categorical levels first seen late) are aligned with the factor.
         """
-        self.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column)
+        names = getattr(block, "names", None)
+        if names is not None and names != self.names:
+            self.expand(names)
+        self.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column,
+                    col_min=getattr(block, "col_min", None), col_max=getattr(block, "col_max", None))
+        if getattr(block, "weight_sum", None) is not None:
+            self.weight_sum = (self.weight_sum or 0.0) + block.weight_sum
+            self.weight_log_sum = (self.weight_log_sum or 0.0) + block.weight_log_sum
+        for col, counts in (getattr(block, "level_counts", None) or {}).items():
+            _add_counts(self.level_counts.setdefault(col, {}), counts)
+        _add_counts(self.filled, getattr(block, "filled", None) or {})
 
+    # -- column growth and recoding ---------------------------------------------------------
+    def expand(self, names: list[str]) -> None:
+        """Append the columns of `names` not yet present (before the target), as zero columns."""
+        old = self.names
+        if names[: len(old) - 1] != old[:-1] or names[-1] != old[-1]:
+            raise ValueError("expand needs the new names to extend the old ones before the target")
+        k_old, k_new = len(old), len(names)
+        if k_new == k_old:
+            return
+        R = np.zeros((k_new, k_new))
+        R[: k_old - 1, : k_old - 1] = self.R[: k_old - 1, : k_old - 1]
+        R[: k_old - 1, -1] = self.R[: k_old - 1, -1]
+        R[-1, -1] = self.R[-1, -1]
+        self.R = R
+        grow = k_new - k_old
+        self.col_min = np.concatenate([self.col_min[:-1], np.full(grow, np.inf), self.col_min[-1:]])
+        self.col_max = np.concatenate([self.col_max[:-1], np.full(grow, -np.inf), self.col_max[-1:]])
+        self.names = list(names)
+
+    def recoded(self, T: np.ndarray, names: list[str]) -> "FactorAccumulator":
+        """The accumulator of A·T (T maps the k old columns to the new ones; target last, kept)."""
+        if T.shape != (self.k, len(names)):
+            raise ValueError(f"recoding matrix is {T.shape}, expected ({self.k}, {len(names)})")
+        RT = self.R @ T
+        k_new = len(names)
+        if RT.shape[0] < k_new:
+            RT = np.vstack([RT, np.zeros((k_new - RT.shape[0], k_new))])
+        R = np.triu(qr(RT, mode="r")[0])[:k_new]
+        lo = np.where(T > 0, self.col_min[:, None], np.inf).min(axis=0)
+        hi = np.where(T > 0, self.col_max[:, None], -np.inf).max(axis=0)
+        return FactorAccumulator(
+            names=list(names), R=R, n_read=self.n_read, n_used=self.n_used,
+            dropped_by_column=dict(self.dropped_by_column), col_min=lo, col_max=hi,
+            weight_sum=self.weight_sum, weight_log_sum=self.weight_log_sum,
+            level_counts={c: dict(v) for c, v in self.level_counts.items()}, filled=dict(self.filled),
+        )
+
+    def aligned(self, names: list[str]) -> "FactorAccumulator":
+        """The same rows with columns `names` (a superset, any order; absent columns are zero)."""
+        if names == self.names:
+            return self
+        index = {n: i for i, n in enumerate(names)}
+        missing = [n for n in self.names if n not in index]
+        if missing:
+            raise ValueError(f"cannot align: columns {missing} are not in the target layout")
+        T = np.zeros((self.k, len(names)))
+        for i, n in enumerate(self.names):
+            T[i, index[n]] = 1.0
+        return self.recoded(T, names)
+
+    # -- merge ------------------------------------------------------------------------------------
     def merge(self, other: "FactorAccumulator") -> "FactorAccumulator":
         """A new accumulator over the rows of both (neither input is changed)."""
-        if other.names != self.names:
-            raise ValueError("cannot merge accumulators of different designs")
-        dropped = dict(self.dropped_by_column)
-        for name, count in other.dropped_by_column.items():
-            dropped[name] = dropped.get(name, 0) + count
+        a, b = self, other
+        if b.names != a.names:
+            union = list(dict.fromkeys(a.names[:-1] + b.names[:-1])) + [a.names[-1]]
+            if a.names[-1] != b.names[-1]:
+                raise ValueError("cannot merge accumulators with different targets")
+            a, b = a.aligned(union), b.aligned(union)
+        levels = {c: dict(v) for c, v in a.level_counts.items()}
+        for col, counts in b.level_counts.items():
+            _add_counts(levels.setdefault(col, {}), counts)
+        weighted = a.weight_sum is not None or b.weight_sum is not None
         return FactorAccumulator(
-            names=list(self.names),
-            R=merge_factors(self.R, other.R),
-            n_read=self.n_read + other.n_read,
-            n_used=self.n_used + other.n_used,
-            dropped_by_column=dropped,
-            col_min=np.minimum(self.col_min, other.col_min),
-            col_max=np.maximum(self.col_max, other.col_max),
+            names=list(a.names),
+            R=merge_factors(a.R, b.R),
+            n_read=a.n_read + b.n_read,
+            n_used=a.n_used + b.n_used,
+            dropped_by_column=_add_counts(dict(a.dropped_by_column), b.dropped_by_column),
+            col_min=np.minimum(a.col_min, b.col_min),
+            col_max=np.maximum(a.col_max, b.col_max),
+            weight_sum=(a.weight_sum or 0.0) + (b.weight_sum or 0.0) if weighted else None,
+            weight_log_sum=(a.weight_log_sum or 0.0) + (b.weight_log_sum or 0.0) if weighted else None,
+            level_counts=levels,
+            filled=_add_counts(dict(a.filled), b.filled),
         )
 
     @property
@@ -91,6 +178,7 @@ class FactorAccumulator:
         """R with a non-negative diagonal (the form stored in model files)."""
         return normalize_signs(self.R)
 
+    # -- state ------------------------------------------------------------------------------------
     def to_state(self) -> dict:
         """A JSON-ready dict of the whole state (floats as Python floats, so they round-trip)."""
         return {
@@ -101,6 +189,10 @@ class FactorAccumulator:
             "dropped_by_column": {k: int(v) for k, v in self.dropped_by_column.items()},
             "col_min": [float(v) for v in self.col_min],
             "col_max": [float(v) for v in self.col_max],
+            "weight_sum": self.weight_sum,
+            "weight_log_sum": self.weight_log_sum,
+            "level_counts": {c: dict(v) for c, v in self.level_counts.items()},
+            "filled": dict(self.filled),
         }
 
     @classmethod
@@ -113,6 +205,8 @@ class FactorAccumulator:
         R = np.zeros((k, k))
         for i, row in enumerate(rows):
             R[i, i:] = np.asarray(row, dtype=np.float64)
+        ws = state.get("weight_sum")
+        wl = state.get("weight_log_sum")
         return cls(
             names=names,
             R=R,
@@ -121,4 +215,8 @@ class FactorAccumulator:
             dropped_by_column={k_: int(v) for k_, v in state["dropped_by_column"].items()},
             col_min=np.asarray(state["col_min"], dtype=np.float64),
             col_max=np.asarray(state["col_max"], dtype=np.float64),
+            weight_sum=None if ws is None else float(ws),
+            weight_log_sum=None if wl is None else float(wl),
+            level_counts={c: {str(k_): int(v) for k_, v in d.items()} for c, d in state.get("level_counts", {}).items()},
+            filled={k_: int(v) for k_, v in state.get("filled", {}).items()},
         )

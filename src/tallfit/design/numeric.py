@@ -22,6 +22,13 @@ class DesignBlock:
     extra: dict[str, pa.Array] = field(default_factory=dict)  # extra columns, used rows only
     file_index: int = -1
     row_start: int = 0
+    names: list[str] | None = None  # design column names (target last) when the design can grow
+    col_min: np.ndarray | None = None  # per-column range of the used rows, before any weighting
+    col_max: np.ndarray | None = None
+    weight_sum: float | None = None  # Σw and Σ log w of the used rows, when weighted
+    weight_log_sum: float | None = None
+    level_counts: dict[str, dict[str, int]] | None = None  # rows per categorical level
+    filled: dict[str, int] = field(default_factory=dict)  # values filled per column
 
     @property
     def n_used(self) -> int:

@@ -13,7 +13,8 @@ import pyarrow as pa
 
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.numeric import DesignBlock, design_block
-from tallfit.design.spec import ModelSpec, check_columns
+from tallfit.design.design import Design, check_design_columns
+from tallfit.design.spec import ModelSpec
 from tallfit.engine.prefetch import prefetched
 from tallfit.errors import ColumnNotFoundError, DataSourceError, TallfitError
 from tallfit.inputs import source_label
@@ -23,7 +24,7 @@ DEFAULT_BATCH_ROWS = 65_536
 ProgressHook = Callable[[int, int], None]  # (rows in this batch, file index)
 
 
-def _where(source, chunk) -> str:
+def chunk_label(source, chunk) -> str:
     files = getattr(source, "files", [])
     name = files[chunk.file_index].path if 0 <= chunk.file_index < len(files) else source.describe()
     return f"{name}, rows {chunk.row_start}-{chunk.row_start + chunk.batch.num_rows - 1}"
@@ -35,15 +36,21 @@ def design_blocks(
     batch_rows: int = DEFAULT_BATCH_ROWS,
     progress: ProgressHook | None = None,
     extra_columns: tuple[str, ...] | list[str] = (),
+    coding: dict | None = None,
+    unseen: str = "error",
+    design: Design | None = None,
 ) -> Iterator[DesignBlock]:
     """Design blocks for every batch of the source, decoded one thread ahead of the caller.
 
     ``extra_columns`` (a fold key, a cluster id, pass-through ids) are read in the same scan and
     handed over in ``block.extra`` as Arrow arrays restricted to the used rows. Each block also
-    carries where it came from (``file_index``, ``row_start``) for messages.
+    carries where it came from (``file_index``, ``row_start``) for messages. ``coding`` (a fitted
+    model's categorical coding) fixes the columns for passes after the fit; without it, levels
+    are discovered. Pass ``design`` to read its state (e.g. filtered-row counts) afterwards.
     """
     where = source_label(source)
-    check_columns(source.schema, spec.input_columns, spec.target, where=where)
+    design = design or Design(spec, coding=coding, unseen=unseen)
+    check_design_columns(spec, source.schema, where)
     for col in extra_columns:
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
@@ -52,18 +59,14 @@ def design_blocks(
 
     def produce() -> Iterator[DesignBlock]:
         for chunk in source.batches(read, batch_rows):
+            label = chunk_label(source, chunk)
             try:
-                block = design_block(chunk.batch, spec)
+                block = design.block(chunk.batch, label, extra_columns)
             except TallfitError:
                 raise
             except (pa.ArrowException, ValueError, TypeError) as exc:
-                raise DataSourceError(f"cannot convert {_where(source, chunk)} to numbers: {exc}") from None
+                raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
             block.file_index, block.row_start = chunk.file_index, chunk.row_start
-            if extra_columns:
-                mask = None if block.keep is None else pa.array(block.keep)
-                for col in extra_columns:
-                    arr = chunk.batch.column(col)
-                    block.extra[col] = arr if mask is None else arr.filter(mask)
             if progress is not None:
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
@@ -72,11 +75,15 @@ def design_blocks(
 
 
 def accumulate(
-    source, spec: ModelSpec, batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None
+    source,
+    spec: ModelSpec,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    progress: ProgressHook | None = None,
+    design: Design | None = None,
 ) -> FactorAccumulator:
-    """One pass: the triangular factor of [X | y] with counts and ranges."""
+    """One pass: the triangular factor of [X | y] with counts and ranges (levels discovered)."""
     acc = FactorAccumulator.create(spec.term_names + [spec.target])
-    for block in design_blocks(source, spec, batch_rows, progress):
+    for block in design_blocks(source, spec, batch_rows, progress, design=design):
         acc.update_block(block)
     return acc
 
@@ -89,13 +96,14 @@ def residual_products_pass(
     b_lo: np.ndarray,
     batch_rows: int = DEFAULT_BATCH_ROWS,
     progress: ProgressHook | None = None,
+    coding: dict | None = None,
 ) -> tuple[np.ndarray, float]:
     """One pass: Xᵀ(y − Xb) and ‖y − Xb‖², accumulated in double-double over the used rows."""
     from tallfit.kernels.compensated import accumulate_residual_products
 
     p = len(keep)
     g_hi, g_lo, ss = np.zeros(p), np.zeros(p), np.zeros(2)
-    for block in design_blocks(source, spec, batch_rows, progress):
+    for block in design_blocks(source, spec, batch_rows, progress, coding=coding):
         if block.n_used == 0:
             continue
         X = np.asfortranarray(block.A[:, keep])

@@ -65,17 +65,26 @@ def infer(
     intercept: bool,
     conf_level: float = 0.95,
     rss: float | None = None,
+    log_weight_sum: float = 0.0,
+    absorbed_levels: int = 0,
 ) -> Inference:
-    """All the classical statistics of an OLS fit from its factor and row count."""
+    """All the classical statistics of an OLS fit from its factor and row count.
+
+    Weighted fits: the factor is of √w-scaled rows; ``n_used`` is the number of observations
+    that count for degrees of freedom (rows with w > 0 for analytic weights, Σw for frequency
+    weights) and ``log_weight_sum`` = Σ log w enters the Gaussian log-likelihood as in
+    statsmodels' WLS. ``absorbed_levels`` (G) are parameters swept out by an absorbed key:
+    residual degrees of freedom n − G − p (Frisch–Waugh–Lovell).
+    """
     if not 0.0 < conf_level < 1.0:
         raise DesignError(f"confidence level must be between 0 and 1 (got {conf_level})")
     p = R11.shape[0]
-    if n_used <= p:
+    if n_used <= p + absorbed_levels:
         raise DesignError(
-            f"{n_used} usable rows for {p} coefficients: inference needs more rows than "
+            f"{n_used} usable rows for {p + absorbed_levels} coefficients: inference needs more rows than "
             "coefficients; supply more data or fewer features"
         )
-    df_resid = n_used - p
+    df_resid = n_used - p - absorbed_levels
     rss = rho * rho if rss is None else rss
     s2 = rss / df_resid
     cov = s2 * unscaled_covariance(R11)
@@ -97,7 +106,7 @@ def infer(
             f_p = float(stats.f.sf(f, df_model, df_resid)) if np.isfinite(f) else 0.0
         else:
             f, f_p = float("nan"), float("nan")
-        llf = -0.5 * n_used * (np.log(2.0 * np.pi * rss / n_used) + 1.0)
+        llf = -0.5 * n_used * (np.log(2.0 * np.pi * rss / n_used) + 1.0) + 0.5 * log_weight_sum
     return Inference(
         estimate=beta,
         std_error=se,

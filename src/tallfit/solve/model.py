@@ -45,6 +45,20 @@ def check_aliases(sol: ExactSolution, on_aliased: str) -> list[str]:
     return [f"fitted without aliased terms {names} ({relations})"]
 
 
+def observations(spec: ModelSpec, acc: FactorAccumulator) -> tuple[int, float]:
+    """Observations for degrees of freedom, and Σ log w for the likelihood.
+
+    Analytic (precision) weights: each used row with w > 0 is one observation and Σ log w enters
+    the likelihood (statsmodels WLS). Frequency weights: a row of weight w stands for w identical
+    rows, so n = Σw and the likelihood is that of the expanded data.
+    """
+    if not spec.weights or acc.weight_sum is None:
+        return acc.n_used, 0.0
+    if spec.weight_kind == "frequency":
+        return int(round(acc.weight_sum)), 0.0
+    return acc.n_used, float(acc.weight_log_sum or 0.0)
+
+
 def fit_from_accumulator(
     spec: ModelSpec,
     acc: FactorAccumulator,
@@ -69,7 +83,11 @@ def fit_from_accumulator(
     warnings = check_aliases(sol, on_aliased)
     if beta is not None:
         sol.beta = np.asarray(beta, dtype=np.float64)
-    inference = infer(sol.R11, sol.r12, sol.rho, sol.beta, acc.n_used, spec.intercept, conf_level, rss=rss)
+    n_obs, log_w = observations(spec, acc)
+    inference = infer(
+        sol.R11, sol.r12, sol.rho, sol.beta, n_obs, spec.has_intercept_column, conf_level,
+        rss=rss, log_weight_sum=log_w,
+    )
     if acc.n_dropped:
         warnings.append(
             f"{acc.n_dropped} of {acc.n_read} rows dropped for missing or non-finite values "

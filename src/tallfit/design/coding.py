@@ -1,0 +1,105 @@
+"""The final coding of categorical columns, chosen after the pass and applied to the factor.
+
+During the pass every level has its own indicator column. Afterwards, without reading the data
+again: rare levels (fewer than ``min_count`` rows, or beyond the ``max_levels`` most frequent)
+merge into one "other" level, a reference level is chosen (default: the most frequent; its
+column is dropped, so the other indicators measure differences from it), and the remaining
+columns are put in a stable order. All of this is one linear map T of the factor's columns,
+applied as triu(qr(R·T)), which equals a direct fit with that coding to rounding.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.design.spec import ModelSpec, indicator_name
+from tallfit.errors import DesignError
+
+OTHER = "(other)"
+
+
+def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_count: int | None,
+                 max_levels: int | None, needs_reference: bool) -> dict:
+    seen = {lvl: n for lvl, n in counts.items() if n > 0}
+    if not seen:
+        raise DesignError(f"categorical column {col!r} has no level with usable rows")
+    ranked = sorted(seen, key=lambda lvl: (-seen[lvl], lvl))
+    merged = set()
+    if min_count:
+        merged |= {lvl for lvl in ranked if seen[lvl] < min_count}
+    if max_levels is not None and len(ranked) > max_levels:
+        merged |= set(ranked[max_levels:])
+    kept = [lvl for lvl in ranked if lvl not in merged]
+    groups = {lvl: seen[lvl] for lvl in kept}
+    if merged:
+        groups[OTHER] = sum(seen[lvl] for lvl in merged)
+    if len(groups) < 2 and needs_reference:
+        only = next(iter(groups))
+        raise DesignError(
+            f"categorical column {col!r} has only one level ({only!r}) in the used rows: it is "
+            "constant, so it cannot be estimated beside the intercept; drop it from the model"
+        )
+    if reference is not None:
+        if reference in merged:
+            raise DesignError(f"reference level {reference!r} of {col!r} was merged into {OTHER}; choose another")
+        if reference not in groups:
+            raise DesignError(
+                f"reference level {reference!r} of {col!r} is not among its levels "
+                f"({', '.join(sorted(groups)[:10])})"
+            )
+    elif needs_reference:
+        reference = max(groups, key=lambda g: (groups[g], g != OTHER, g))  # most frequent
+    if not needs_reference:
+        reference = None
+    columns = sorted(g for g in groups if g != reference and g != OTHER)
+    if OTHER in groups and reference != OTHER:
+        columns.append(OTHER)
+    offset = {g: i for i, g in enumerate(columns)}
+    column_of = {}
+    for lvl in seen:
+        group = OTHER if lvl in merged else lvl
+        column_of[lvl] = offset.get(group, -1)
+    return {
+        "columns": columns,
+        "column_of": column_of,
+        "reference": reference,
+        "merged": sorted(merged),
+        "other_column": offset.get(OTHER),
+        "counts": dict(sorted(seen.items(), key=lambda kv: (-kv[1], kv[0]))),
+    }
+
+
+def finalize_coding(
+    acc: FactorAccumulator,
+    spec: ModelSpec,
+    reference: dict[str, str] | None = None,
+    min_count: int | None = None,
+    max_levels: int | None = None,
+) -> tuple[FactorAccumulator, dict | None]:
+    """Recode the factor to the final categorical coding; returns (new accumulator, coding)."""
+    if not spec.categorical:
+        return acc, None
+    reference = reference or {}
+    unknown = set(reference) - set(spec.categorical)
+    if unknown:
+        raise DesignError(f"reference level given for {sorted(unknown)}, which are not categorical columns")
+    raw_index = {n: i for i, n in enumerate(acc.names)}
+    base = spec.term_names
+    names = list(base)
+    sources: list[list[int]] = [[raw_index[n]] for n in base]
+    columns = {}
+    for pos, col in enumerate(spec.categorical):
+        needs_ref = spec.has_intercept_column or pos > 0 or bool(spec.absorb)
+        plan = _plan_column(col, acc.level_counts.get(col, {}), reference.get(col), min_count, max_levels, needs_ref)
+        for group in plan["columns"]:
+            names.append(indicator_name(col, group))
+            members = [lvl for lvl, off in plan["column_of"].items() if off == plan["columns"].index(group)]
+            sources.append([raw_index[indicator_name(col, lvl)] for lvl in members])
+        columns[col] = plan
+    names.append(spec.target)
+    sources.append([acc.k - 1])
+    T = np.zeros((acc.k, len(names)))
+    for j, rows in enumerate(sources):
+        T[rows, j] = 1.0
+    return acc.recoded(T, names), {"names": names, "columns": columns}
