@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+from tallfit.errors import DesignError
+
 
 def split_list(value: str) -> list[str]:
     """'a, b,c' → ['a', 'b', 'c']."""
@@ -33,3 +35,52 @@ def progress_for(args, source, label: str = "reading"):
 
     enabled = False if getattr(args, "no_progress", False) else None
     return ScanProgress(source, label=label, enabled=enabled)
+
+
+def _pairs(values: list[str], what: str) -> dict[str, str]:
+    out = {}
+    for v in values:
+        key, sep, val = v.partition("=")
+        if not sep or not key.strip():
+            raise DesignError(f"{what} expects COLUMN=VALUE, got {v!r}")
+        out[key.strip()] = val.strip()
+    return out
+
+
+def add_design_options(p: argparse.ArgumentParser) -> None:
+    """Options that shape the design matrix (shared by every command that fits)."""
+    g = p.add_argument_group("design terms")
+    g.add_argument("--categorical", type=split_list, default=[], metavar="COLS", help="columns entered as indicator columns (levels found while reading)")
+    g.add_argument("--reference", action="append", default=[], metavar="COL=LEVEL", help="reference level of a categorical column (default: its most frequent level)")
+    g.add_argument("--min-level-rows", type=int, default=None, metavar="N", help="merge levels with fewer rows than N into one '(other)' level")
+    g.add_argument("--max-levels", type=int, default=None, metavar="K", help="keep the K most frequent levels of each categorical column, merge the rest")
+    g.add_argument("--derive", action="append", default=[], metavar="'NAME = EXPR'", help="a derived feature as an SQL expression, e.g. 'log_iops = ln(disk_iops + 1)' (repeatable)")
+    g.add_argument("--interactions", type=split_list, default=[], metavar="COLS", help="add all pairwise products of these columns as features")
+    g.add_argument("--poly", action="append", default=[], metavar="COL=DEGREE", help="add powers 2..DEGREE of a column as features (repeatable)")
+    g.add_argument("--where", default=None, metavar="EXPR", help="SQL condition selecting the rows to use, e.g. \"region = 'north-1' AND cpu_util > 0.05\"")
+    g.add_argument("--weights", default=None, metavar="COL", help="weight column (rows scaled by √w)")
+    g.add_argument("--weight-kind", choices=["analytic", "frequency"], default="analytic", help="analytic: precision weights, each row one observation (default); frequency: a row of weight w counts as w rows")
+    g.add_argument("--missing", action="append", default=[], metavar="COL=POLICY", help="missing-value policy per column (or '*'): drop (default), fail, fill:VALUE, indicator[:VALUE] (repeatable)")
+
+
+def design_kwargs(args) -> dict:
+    """Keyword arguments of tallfit.api.fit from the design options."""
+    poly = {}
+    for col, deg in _pairs(args.poly, "--poly").items():
+        try:
+            poly[col] = int(deg)
+        except ValueError:
+            raise DesignError(f"--poly {col}={deg}: the degree must be a whole number") from None
+    return {
+        "categorical": args.categorical,
+        "reference": _pairs(args.reference, "--reference") or None,
+        "min_level_count": args.min_level_rows,
+        "max_levels": args.max_levels,
+        "derive": args.derive,
+        "interactions": args.interactions,
+        "polynomials": poly or None,
+        "where": args.where,
+        "weights": args.weights,
+        "weight_kind": args.weight_kind,
+        "missing": _pairs(args.missing, "--missing") or None,
+    }

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from tallfit.cli.common import add_data_options, open_data, progress_for, split_list
+from tallfit.cli.common import add_data_options, add_design_options, design_kwargs, open_data, progress_for, split_list
 
 NAME = "fit"
 HELP = "fit a model on a data set and save it"
@@ -14,7 +14,7 @@ def register(sub) -> None:
     f = sub.add_parser(NAME, help=HELP, description="Fit TARGET on FEATURES by exact least squares, one pass over the data.")
     add_data_options(f)
     f.add_argument("--target", required=True, help="the column to explain")
-    f.add_argument("--features", required=True, type=split_list, help="comma-separated numeric columns")
+    f.add_argument("--features", type=split_list, default=[], help="comma-separated numeric columns")
     f.add_argument("--out", help="write the model file here (JSON, written atomically)")
     f.add_argument("--no-intercept", action="store_true", help="fit without a constant term (R² becomes uncentred)")
     f.add_argument("--drop-aliased", action="store_true", help="fit without terms that are combinations of others, and report them")
@@ -22,6 +22,7 @@ def register(sub) -> None:
     f.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     f.add_argument("--rank-tol", type=float, default=None, help="tolerance for calling a term aliased (default 1e-11)")
     f.add_argument("--json", action="store_true", help="print the result as JSON instead of the summary")
+    add_design_options(f)
 
 
 def run(args) -> int:
@@ -30,6 +31,10 @@ def run(args) -> int:
     from tallfit.modelfile import encode_json
     from tallfit.solve.exact import DEFAULT_RANK_TOL
 
+    if not (args.features or args.categorical or args.derive or args.interactions or args.poly):
+        from tallfit.errors import DesignError
+
+        raise DesignError("no terms: name the explaining columns with --features (and/or --categorical)")
     if args.out:
         check_writable(args.out)
     source = open_data(args)
@@ -45,6 +50,7 @@ def run(args) -> int:
             conf_level=args.level,
             rank_tol=DEFAULT_RANK_TOL if args.rank_tol is None else args.rank_tol,
             progress=prog,
+            **design_kwargs(args),
         )
     if args.out:
         result.save(args.out)

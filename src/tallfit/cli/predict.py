@@ -17,6 +17,7 @@ def register(sub) -> None:
     p.add_argument("--out", required=True, help="output file (.parquet or .csv), written atomically")
     p.add_argument("--intervals", action="store_true", help="add ci_low/ci_high (mean) and pi_low/pi_high (new row)")
     p.add_argument("--level", type=float, default=None, help="interval level (default: the model's)")
+    p.add_argument("--unseen", choices=["error", "reference", "other"], default="error", help="categorical levels the model never saw: stop (default), or score as the reference or the merged other level")
     p.add_argument("--keep", type=split_list, default=[], metavar="COLS", help="comma-separated columns to copy through (an id, a timestamp)")
 
 
@@ -38,6 +39,7 @@ def run(args) -> int:
             passthrough=args.keep,
             batch_rows=args.batch_rows,
             progress=prog,
+            unseen=args.unseen,
         )
     print(f"{report.rows:,} predictions written to {args.out} (columns: {', '.join(report.columns)})")
     for w in report.warnings():

@@ -51,6 +51,25 @@ def _cautions(result: FitResult) -> list[str]:
     return lines
 
 
+def _design_lines(result: FitResult) -> list[str]:
+    """Filter, derived terms, weights, filled values and categorical codings, when present."""
+    spec, acc = result.spec, result.accumulator
+    lines = []
+    if spec.where:
+        lines.append(f"rows used where {spec.where}")
+    for name, expr in spec.derive:
+        lines.append(f"derived {name} = {expr}")
+    if spec.weights:
+        lines.append(f"weights {spec.weights} ({spec.weight_kind}; sum {sig(acc.weight_sum or 0.0)})")
+    for col, n in sorted(acc.filled.items()):
+        lines.append(f"filled {count(n)} missing values of {col} ({spec.policy_for(col).to_text()})")
+    for col, c in (result.coding or {}).get("columns", {}).items():
+        ref = f"reference {c['reference']!r}" if c["reference"] is not None else "no reference (no intercept)"
+        merged = f", {len(c['merged'])} rare merged into (other)" if c["merged"] else ""
+        lines.append(f"levels of {col}: {len(c['counts'])} seen, {ref}{merged}")
+    return [f"design    {lines[0]}"] + [f"          {ln}" for ln in lines[1:]] if lines else []
+
+
 def render_text(result: FitResult) -> str:
     inf = result.inference
     spec = result.spec
@@ -61,9 +80,10 @@ def render_text(result: FitResult) -> str:
         out.append(f"data      {result.source['description']}")
     dropped = ""
     if acc.n_dropped:
-        parts = ", ".join(f"{k} {count(v)}" for k, v in sorted(acc.dropped_by_column.items()))
-        dropped = f" · {count(acc.n_dropped)} dropped ({parts})"
-    out.append(f"rows      {count(acc.n_read)} read · {count(inf.n_used)} used{dropped}")
+        parts = ", ".join(f"{k.strip('()')} {count(v)}" for k, v in sorted(acc.dropped_by_column.items()))
+        dropped = f" · {count(acc.n_dropped)} not used ({parts})"
+    out.append(f"rows      {count(acc.n_read)} read · {count(acc.n_used)} used{dropped}")
+    out.extend(_design_lines(result))
     out.append("")
     out.append(f"effects   change in {spec.target} per unit of each term, the others held fixed")
     out.extend(_effects(result))

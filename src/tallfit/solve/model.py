@@ -88,10 +88,12 @@ def fit_from_accumulator(
         sol.R11, sol.r12, sol.rho, sol.beta, n_obs, spec.has_intercept_column, conf_level,
         rss=rss, log_weight_sum=log_w,
     )
-    if acc.n_dropped:
+    missing = {k: v for k, v in acc.dropped_by_column.items() if not k.startswith("(")}
+    if missing:
         warnings.append(
-            f"{acc.n_dropped} of {acc.n_read} rows dropped for missing or non-finite values "
-            f"({', '.join(f'{k}: {v}' for k, v in sorted(acc.dropped_by_column.items()))})"
+            f"rows dropped for missing or non-finite values, per column: "
+            f"{', '.join(f'{k} {v}' for k, v in sorted(missing.items()))} (a row missing in two "
+            "columns counts in both); if values are not missing at random this biases the fit"
         )
     if sol.trusted_digits < LOW_DIGITS and extra.get("refinement") is None:
         warnings.append(
