@@ -212,3 +212,43 @@ def test_missing_policies():
     np.testing.assert_allclose(ind.inference.estimate, np.linalg.lstsq(X, y, rcond=None)[0], rtol=1e-9)
     with pytest.raises(DataSourceError, match="column 'x'.*rows 0-7"):
         tallfit.fit(t, "y", ["x", "z"], missing={"x": "fail"})
+
+
+def test_absorbed_key_equals_explicit_dummies():
+    """Within estimator = fit with one indicator per firm (Frisch–Waugh–Lovell), statsmodels OLS."""
+    df, table = _grunfeld()
+    model = tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", batch_rows=13)
+    firms = sorted(set(df.firm))
+    X = np.column_stack([df.value, df.capital, _dummies(df.firm.to_numpy(), firms)])
+    res = sm.OLS(df.invest.to_numpy(), X).fit()
+    inf = model.inference
+    assert model.terms == ["value", "capital"]
+    np.testing.assert_allclose(inf.estimate, res.params[:2], rtol=1e-9)
+    np.testing.assert_allclose(inf.std_error, res.bse[:2], rtol=1e-9)
+    assert inf.df_resid == res.df_resid
+    np.testing.assert_allclose(inf.r_squared, res.rsquared, rtol=1e-9)
+    np.testing.assert_allclose(inf.log_likelihood, res.llf, rtol=1e-10)
+    np.testing.assert_allclose(inf.aic, res.aic, rtol=1e-10)
+    effects = model.coding["absorbed"]["effects"]
+    np.testing.assert_allclose([effects[f] for f in firms], res.params[2:], rtol=1e-8)
+    pred = tallfit.predict(model, table)["prediction"].to_numpy()
+    np.testing.assert_allclose(pred, res.fittedvalues, rtol=1e-9)
+
+
+def test_absorb_with_a_level_seen_late_and_a_categorical():
+    rng = np.random.default_rng(11)
+    n = 900
+    host = np.concatenate([rng.choice([f"h{i:03d}" for i in range(40)], n - 30), ["h999"] * 30])
+    cls = rng.choice(["compute-a", "storage-b"], n)
+    x = rng.normal(size=n)
+    y = 2 * x + (cls == "storage-b") * 1.0 + np.array([hash(h) % 7 for h in host]) + rng.normal(size=n)
+    table = pa.table({"x": x, "host": host, "cls": cls, "y": y})
+    model = tallfit.fit(table, "y", ["x"], categorical=["cls"], absorb="host", batch_rows=100,
+                        reference={"cls": "compute-a"})
+    hosts = sorted(set(host))
+    X = np.column_stack([x, (cls == "storage-b").astype(float), _dummies(host, hosts)])
+    res = sm.OLS(y, X).fit()
+    np.testing.assert_allclose(model.inference.estimate, res.params[:2], rtol=1e-9)
+    np.testing.assert_allclose(model.inference.std_error, res.bse[:2], rtol=1e-9)
+    with pytest.raises(DesignError, match="never saw"):
+        tallfit.predict(model, pa.table({"x": [0.0], "host": ["h-new"], "cls": ["compute-a"]}))

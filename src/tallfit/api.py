@@ -51,6 +51,12 @@ def fit(
     reference: dict[str, str] | None = None,
     min_level_count: int | None = None,
     max_levels: int | None = None,
+    absorb: str | None = None,
+    by: Sequence[str] = (),
+    solver: str = "exact",
+    solver_options: dict[str, Any] | None = None,
+    robust: str | None = None,
+    cluster: str | Sequence[str] | None = None,
 ) -> FitResult:
     """Fit ``target ~ features`` by exact least squares, streaming the data once.
 
@@ -93,18 +99,47 @@ def fit(
     reference, min_level_count, max_levels
         Reference level per categorical column (default: the most frequent); levels with fewer
         rows, or beyond the most frequent ``max_levels``, are merged into one "(other)" level.
+    solver, solver_options
+        ``"exact"`` (default), or an iterative solver (``"gd"``, ``"cg"``, ``"lbfgs"``, ``"sgd"``;
+        see ``tallfit.solve.iterative``) run after the factor pass, one more pass per iteration or
+        epoch (so the data must be readable again: a path, a Table or a callable), with its options
+        as a dict, plus ``cache`` (bool) and ``spill_dir`` for a local cache of the decoded design.
+        The result's notes say how far it is from the exact answer.
+    robust, cluster
+        ``"HC0"``…``"HC3"`` and/or one or two key columns (``"host_id"`` or ``"host_id,day"``):
+        one more pass computes robust (clustered) standard errors, kept in ``result.robust`` and
+        shown beside the plain ones (see ``tallfit.solve.robust``).
     """
     spec = make_spec(
         target, features, intercept=intercept, categorical=categorical, derive=derive,
         interactions=interactions, polynomials=polynomials, where=where, weights=weights,
-        weight_kind=weight_kind, missing=missing,
+        weight_kind=weight_kind, missing=missing, absorb=absorb, by=by,
     )
     if int(batch_rows) < 1:
         raise ValueError("batch_rows must be at least 1")
     source = as_source(data, format=format, delimiter=delimiter)
+    if absorb and (refine or solver != "exact" or weights):
+        from tallfit.errors import DesignError
+
+        raise DesignError(
+            "an absorbed key works with the exact solver, unweighted, without refinement passes; "
+            "drop --refine/--solver/--weights or the --absorb key"
+        )
     design = Design(spec)
-    acc = local.accumulate(source, spec, batch_rows, progress, design=design)
-    acc, coding = finalize_coding(acc, spec, reference, min_level_count, max_levels)
+    if spec.by:
+        if refine or solver != "exact" or weights or absorb or robust or cluster:
+            from tallfit.errors import DesignError
+
+            raise DesignError(
+                "per-group models (--by) are fitted exactly and unweighted, without refinement, "
+                "absorbed keys or robust errors; drop those options or fit one group at a time"
+            )
+        return _fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol,
+                             conf_level, reference, min_level_count, max_levels)
+    raw = local.accumulate(source, spec, batch_rows, progress, design=design)
+    absorber = raw if spec.absorb else None
+    acc = absorber.inner if absorber else raw
+    acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels)
     notes = [
         f"categorical column {c!r} has more than {WIDE_LEVELS} levels as dense indicator columns; "
         "a key of that many values is better absorbed (fixed effects) than expanded"
@@ -126,12 +161,117 @@ def fit(
         options=options,
     )
     common["coding"] = coding
-    result = fit_from_accumulator(spec, acc, **common)
+    if solver != "exact":
+        result = _fit_iterative(source, spec, acc, common, notes, solver, solver_options, batch_rows, progress, refine)
+        return _with_robust(result, source, robust, cluster, batch_rows, progress)
+    absorbed = None
+    if absorber is not None:
+        absorbed = {"column": spec.absorb, "levels": absorber.n_levels, "total_ss": absorber.total_ss()}
+    result = fit_from_accumulator(spec, acc, absorbed=absorbed, **common)
     result.warnings.extend(notes)
+    if absorber is not None:
+        _attach_effects(result, absorber, T, absorbed)
     passes = 2 if refine is True else int(refine)
     if passes > 0:
         result = _refined(source, spec, acc, result, passes, batch_rows, progress, common)
+    return _with_robust(result, source, robust, cluster, batch_rows, progress)
+
+
+def _cluster_list(cluster: str | Sequence[str] | None) -> list[str]:
+    if not cluster:
+        return []
+    return [c.strip() for c in cluster.split(",") if c.strip()] if isinstance(cluster, str) else list(cluster)
+
+
+def _with_robust(result: FitResult, source, robust, cluster, batch_rows, progress) -> FitResult:
+    """Run the second pass for robust / clustered errors when asked (see tallfit.solve.robust)."""
+    if not robust and not cluster:
+        return result
+    from tallfit.engine.second_pass import second_pass
+    from tallfit.solve.robust import robust_for_model
+
+    sp = second_pass(result, source, cluster=_cluster_list(cluster), diagnostics=False,
+                     batch_rows=batch_rows, progress=progress)
+    result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust)
     return result
+
+
+def diagnose(
+    model: FitResult | str | os.PathLike,
+    data: Any,
+    *,
+    robust: str | None = "HC3",
+    cluster: str | Sequence[str] | None = None,
+    keep: Sequence[str] = (),
+    bins: int = 20,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    format: str | None = None,
+    delimiter: str = ",",
+    progress: ProgressHook | None = None,
+) -> dict[str, Any]:
+    """One more pass with a fitted model: robust errors and residual diagnostics.
+
+    Returns ``{"model": FitResult (with .robust set when ``data`` is the fitting data),
+    "diagnostics": dict}``; ``tallfit.render.report.write_report`` turns it into a report.
+    """
+    from tallfit.diagnostics.assemble import build_diagnostics, same_data
+    from tallfit.engine.second_pass import second_pass
+    from tallfit.solve.robust import robust_for_model
+
+    from tallfit.grouped import GroupedFit
+
+    if not isinstance(model, (FitResult, GroupedFit)):
+        model = load_model(model)
+    source = as_source(data, format=format, delimiter=delimiter)
+    sp = second_pass(model, source, cluster=_cluster_list(cluster), keep=list(keep),
+                     batch_rows=batch_rows, progress=progress)
+    if same_data(model, sp):
+        model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust)
+    return {"model": model, "diagnostics": build_diagnostics(model, sp, bins=bins, robust=model.robust),
+            "source": source.describe()}
+
+
+def _fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol, conf_level,
+                  reference, min_level_count, max_levels):
+    """One model per value of the ``by`` columns, from one pass (see tallfit.grouped)."""
+    from tallfit.grouped import fit_groups
+
+    options = {"batch_rows": int(batch_rows), "drop_aliased": bool(drop_aliased),
+               "rank_tol": float(rank_tol), "conf_level": float(conf_level)}
+
+    def finalize(acc):
+        acc, coding, _ = finalize_coding(acc, spec, reference, min_level_count, max_levels)
+        return fit_from_accumulator(spec, acc, on_aliased="drop" if drop_aliased else "error",
+                                    rank_tol=rank_tol, conf_level=conf_level, coding=coding, options=options)
+
+    grouped = fit_groups(source, spec, batch_rows, progress, design, finalize)
+    grouped.options = options
+    grouped.source = {"description": source.describe(), **source.fingerprint()}
+    return grouped
+
+
+def _attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
+    """Store the absorbed level effects α_g = ȳ_g − x̄_gᵀβ in the model's coding (for prediction)."""
+    import numpy as np
+
+    means = absorber.means @ T if T is not None else absorber.means
+    acc = result.accumulator
+    keep = [acc.names.index(t) for t in result.terms]
+    alpha = means[:, -1] - means[:, keep] @ result.inference.estimate
+    levels = {lvl: i for lvl, i in absorber.coder.index.items() if absorber.counts[i] > 0}
+    counts = absorber.counts
+    effects = {lvl: float(alpha[i]) for lvl, i in levels.items()}
+    idx = np.array(list(levels.values()), dtype=np.int64)
+    mean_effect = float(np.sum(alpha[idx] * counts[idx]) / counts[idx].sum())
+    coding = result.coding or {"names": list(acc.names), "columns": {}}
+    coding["absorbed"] = {
+        "column": absorbed["column"],
+        "levels": int(absorbed["levels"]),
+        "r_squared_within": absorbed.get("r_squared_within"),
+        "mean_effect": mean_effect,
+        "effects": effects,
+    }
+    result.coding = coding
 
 
 def _refined(source, spec, acc, first: FitResult, passes, batch_rows, progress, common) -> FitResult:
@@ -156,11 +296,32 @@ def _refined(source, spec, acc, first: FitResult, passes, batch_rows, progress, 
     return result
 
 
+def _fit_iterative(source, spec, acc, common, notes, solver, solver_options, batch_rows, progress,
+                   refine) -> FitResult:
+    """An iterative solver after the factor pass (see tallfit.solve.iterative.driver)."""
+    from tallfit.engine.cache import DesignPasses
+    from tallfit.errors import DesignError
+    from tallfit.solve.iterative.driver import fit_iterative
+
+    if refine:
+        raise DesignError("refinement applies to the exact solver only; drop refine (--refine) or use solver exact")
+    opts = dict(solver_options or {})
+    cache, spill_dir = bool(opts.pop("cache", False)), opts.pop("spill_dir", None)
+    with DesignPasses(source, spec, batch_rows, progress, coding=common.get("coding"), cache=cache,
+                      spill_dir=spill_dir) as passes:
+        result = fit_iterative(spec, acc, passes, solver, opts, **common)
+    result.iterations["cache"] = passes.cache_info  # after close: where it was, its size, "removed"
+    result.warnings.extend(notes)
+    return result
+
+
 def predict(model: FitResult | str | os.PathLike, data: Any, **kwargs: Any):
     """Stream predictions for new data; see :func:`tallfit.scoring.predict` for the options."""
     from tallfit.scoring import predict as _predict
 
-    if not isinstance(model, FitResult):
+    from tallfit.grouped import GroupedFit
+
+    if not isinstance(model, (FitResult, GroupedFit)):
         model = load_model(model)
     return _predict(model, data, **kwargs)
 
@@ -173,3 +334,86 @@ def load(path: str | os.PathLike) -> FitResult:
 def save(model: FitResult, path: str | os.PathLike) -> None:
     """Write a model file atomically."""
     save_model(model, path)
+
+
+def validate(
+    data: Any,
+    target: str,
+    features: Sequence[str],
+    *,
+    folds: int = 10,
+    fold_key: str | None = None,
+    holdout: float = 0.0,
+    holdout_key: str | None = None,
+    seed: int = 0,
+    ridge: str | Sequence[float] | None = None,
+    ridge_count: int = 50,
+    ridge_rule: str = "min",
+    select: str | None = None,
+    criterion: str = "bic",
+    compare: Sequence[Sequence[str]] = (),
+    mae: bool = False,
+    intercept: bool = True,
+    batch_rows: int = DEFAULT_BATCH_ROWS,
+    drop_aliased: bool = False,
+    conf_level: float = 0.95,
+    rank_tol: float = DEFAULT_RANK_TOL,
+    format: str | None = None,
+    delimiter: str = ",",
+    progress: ProgressHook | None = None,
+    categorical: Sequence[str] = (),
+    derive: Sequence[str] = (),
+    interactions: Sequence[str] = (),
+    polynomials: dict[str, int] | None = None,
+    where: str | None = None,
+    missing: dict[str, str] | None = None,
+    reference: dict[str, str] | None = None,
+    min_level_count: int | None = None,
+    max_levels: int | None = None,
+):
+    """Fit on the training rows and measure prediction error on rows not fitted, in one pass.
+
+    Rows go to a holdout (``holdout`` fraction, by a hash of ``holdout_key`` or of the row
+    position) and to ``folds`` cross-validation folds (by ``fold_key`` or position), with
+    ``seed``. ``ridge`` ("auto" for a log grid of ``ridge_count`` penalties, or a list) adds a
+    ridge path chosen by ``ridge_rule`` ("min" or "1se"); ``select`` ("forward", "backward",
+    "best") searches terms by ``criterion`` ("aic", "bic", "adj_r2", "cv"); each entry of
+    ``compare`` is a list of terms given an F test against the model without them. ``mae``
+    adds a second pass for the holdout's mean absolute error. The design options are those of
+    :func:`fit` (weights, absorbed keys and iterative solvers are not offered here). Returns a
+    ValidationReport.
+    """
+    from tallfit.accumulate.folds import FoldPlan
+    from tallfit.engine.split import absolute_error_pass, accumulate_split, finalize_split
+    from tallfit.validation import build_validation, full_coef
+
+    spec = make_spec(
+        target, features, intercept=intercept, categorical=categorical, derive=derive,
+        interactions=interactions, polynomials=polynomials, where=where, missing=missing,
+    )
+    if int(batch_rows) < 1:
+        raise ValueError("batch_rows must be at least 1")
+    plan = FoldPlan(folds=folds, fold_key=fold_key, holdout=holdout, holdout_key=holdout_key, seed=seed)
+    source = as_source(data, format=format, delimiter=delimiter)
+    accs = accumulate_split(source, spec, plan, batch_rows, progress)
+    accs, coding = finalize_split(accs, spec, reference, min_level_count, max_levels)
+    options = {"batch_rows": int(batch_rows), "drop_aliased": bool(drop_aliased), "rank_tol": float(rank_tol),
+               "conf_level": float(conf_level), "min_level_count": min_level_count, "max_levels": max_levels,
+               "split": plan.to_dict()}
+    fit_options = dict(on_aliased="drop" if drop_aliased else "error", rank_tol=rank_tol, conf_level=conf_level,
+                       source={"description": source.describe(), **source.fingerprint()}, options=options,
+                       coding=coding)
+    report = build_validation(spec, accs, fit_options=fit_options, ridge=ridge, ridge_count=ridge_count,
+                              ridge_rule=ridge_rule, select=select, criterion=criterion,
+                              compare=[list(c) for c in compare])
+    if mae and report.holdout is not None:
+        import numpy as np
+
+        models = [full_coef(report.fit)]
+        if report.ridge is not None and report.ridge.chosen_fit is not None:
+            models.append(report.ridge.chosen_fit.inference.estimate)
+        sae, _ = absolute_error_pass(source, spec, plan, np.column_stack(models), batch_rows, progress)
+        report.holdout.sae = float(sae[0])
+        if len(models) > 1:
+            report.ridge.holdout_mae = float(sae[1] / report.holdout.n)
+    return report

@@ -73,6 +73,21 @@ def _floats(values: Any) -> np.ndarray:
     return np.asarray(conv(values), dtype=np.float64)
 
 
+def _robust_from_doc(r: Any) -> dict | None:
+    """The optional robust-errors block (absent in older files): numbers back from JSON's spelling."""
+    if not r:
+        return None
+    r = dict(r)
+    r["estimators"] = {
+        name: {k: (_floats(v).tolist() if isinstance(v, list) else v) for k, v in est.items()}
+        for name, est in r["estimators"].items()
+    }
+    for key in ("max_leverage", "max_ratio_to_plain"):
+        if key in r:
+            r[key] = float(_floats(r[key]))
+    return r
+
+
 def model_to_dict(result: FitResult) -> dict:
     inf = result.inference
     inference = {name: getattr(inf, name) for name in Inference.__dataclass_fields__}
@@ -94,6 +109,7 @@ def model_to_dict(result: FitResult) -> dict:
             "options": result.options,
             "warnings": result.warnings,
             "coding": result.coding,
+            **({"robust": result.robust} if result.robust else {}),
         },
         "accumulator": result.accumulator.to_state(),
     }
@@ -104,9 +120,7 @@ def save_model(result: FitResult, path: str | os.PathLike) -> None:
     write_text_atomic(path, encode_json(model_to_dict(result)) + "\n")
 
 
-def model_from_dict(doc: Any, where: str = "model") -> FitResult:
-    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
-        raise ModelFileError(f"{where} is not a tallfit model file (no 'format': '{FORMAT}' field)")
+def _check_version(doc: dict, where: str) -> None:
     version = doc.get("format_version")
     if not isinstance(version, int):
         raise ModelFileError(f"{where} has no valid format_version")
@@ -116,6 +130,12 @@ def model_from_dict(doc: Any, where: str = "model") -> FitResult:
             f"{doc.get('library_version', '?')}; this tallfit {__version__} reads versions up to "
             f"{FORMAT_VERSION}: upgrade tallfit to load it"
         )
+
+
+def model_from_dict(doc: Any, where: str = "model") -> FitResult:
+    if not isinstance(doc, dict) or doc.get("format") != FORMAT:
+        raise ModelFileError(f"{where} is not a tallfit model file (no 'format': '{FORMAT}' field)")
+    _check_version(doc, where)
     try:
         m = doc["model"]
         spec = ModelSpec.from_dict(m["spec"])
@@ -147,6 +167,7 @@ def model_from_dict(doc: Any, where: str = "model") -> FitResult:
             options=m.get("options") or {},
             warnings=[str(w) for w in m.get("warnings") or []],
             coding=m.get("coding"),
+            robust=_robust_from_doc(m.get("robust")),
         )
     except (KeyError, TypeError, ValueError) as exc:
         raise ModelFileError(f"{where} is damaged or incomplete ({type(exc).__name__}: {exc})") from None
@@ -154,6 +175,46 @@ def model_from_dict(doc: Any, where: str = "model") -> FitResult:
     if inference.estimate.shape != (p,) or inference.cov.shape != (p, p):
         raise ModelFileError(f"{where} is inconsistent: {p} terms but estimates of shape {inference.estimate.shape}")
     return result
+
+
+def save_grouped(grouped, path: str | os.PathLike) -> None:
+    """Write per-group models as one model file (every group with its own accumulator)."""
+    doc = {
+        "format": FORMAT,
+        "format_version": FORMAT_VERSION,
+        "library_version": __version__,
+        "grouped": {
+            "by": grouped.by,
+            "failed": grouped.failed,
+            "rows": grouped.rows,
+            "options": grouped.options,
+            "source": grouped.source,
+            "n_read": grouped.n_read,
+            "n_used": grouped.n_used,
+            "dropped_by_column": grouped.dropped_by_column,
+            "groups": {k: {key: v for key, v in model_to_dict(r).items() if key in ("model", "accumulator")}
+                       for k, r in grouped.groups.items()},
+        },
+    }
+    write_text_atomic(path, encode_json(doc) + "\n")
+
+
+def _grouped_from_dict(doc: dict, where: str):
+    from tallfit.grouped import GroupedFit
+
+    g = doc["grouped"]
+    try:
+        groups = {
+            str(k): model_from_dict({"format": FORMAT, "format_version": doc["format_version"], **v}, where)
+            for k, v in g["groups"].items()
+        }
+        return GroupedFit(
+            by=list(g["by"]), groups=groups, failed=dict(g.get("failed", {})), rows=dict(g.get("rows", {})),
+            options=dict(g.get("options", {})), n_read=int(g.get("n_read", 0)), n_used=int(g.get("n_used", 0)),
+            dropped_by_column=dict(g.get("dropped_by_column", {})), source=dict(g.get("source", {})),
+        )
+    except (KeyError, TypeError, ValueError) as exc:
+        raise ModelFileError(f"{where} is damaged or incomplete ({type(exc).__name__}: {exc})") from None
 
 
 def load_model(path: str | os.PathLike) -> FitResult:
@@ -165,4 +226,8 @@ def load_model(path: str | os.PathLike) -> FitResult:
         raise ModelFileError(f"model file {str(path)!r} does not exist") from None
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ModelFileError(f"model file {str(path)!r} is not readable JSON ({exc})") from None
-    return model_from_dict(doc, where=f"model file {str(path)!r}")
+    where = f"model file {str(path)!r}"
+    if isinstance(doc, dict) and "grouped" in doc and doc.get("format") == FORMAT:
+        _check_version(doc, where)
+        return _grouped_from_dict(doc, where)
+    return model_from_dict(doc, where=where)

@@ -34,6 +34,7 @@ class FitResult:
     source: dict[str, Any] = field(default_factory=dict)
     options: dict[str, Any] = field(default_factory=dict)
     warnings: list[str] = field(default_factory=list)
+    robust: dict[str, Any] | None = None  # robust / clustered errors from a second pass (solve/robust.py)
     iterations: dict[str, Any] | None = None  # an iterative solver's settings, stop reason and history
     coding: dict[str, Any] | None = None  # final coding of categorical columns (design/coding.py)
 
@@ -73,8 +74,21 @@ class FitResult:
             for col, c in self.coding["columns"].items()
         }
 
+    def collinearity(self):
+        """VIFs, standardised estimates and the standardised design's condition (solve/collinearity.py)."""
+        from tallfit.solve.collinearity import collinearity
+        from tallfit.solve.exact import reduce_factor
+
+        names = self.accumulator.names[:-1]
+        Rk = reduce_factor(self.accumulator.R, [names.index(t) for t in self.terms])
+        has_intercept = bool(self.terms) and self.terms[0] == "(intercept)"
+        return collinearity(Rk, list(self.terms), self.inference.estimate, has_intercept, self.inference.n_used)
+
     def term_table(self) -> list[dict[str, Any]]:
         inf = self.inference
+        col = self.collinearity()
+        vif = dict(zip(col.terms, col.vif))
+        std = dict(zip(col.terms, col.std_estimate)) if col.std_estimate is not None else {}
         return [
             {
                 "name": name,
@@ -85,6 +99,8 @@ class FitResult:
                 "ci_low": float(inf.ci_low[i]),
                 "ci_high": float(inf.ci_high[i]),
                 "digits": round(float(self.digits[i]), 1),
+                "vif": float(vif[name]) if name in vif else None,
+                "std_estimate": float(std[name]) if name in std else None,
             }
             for i, name in enumerate(self.terms)
         ]
@@ -126,6 +142,8 @@ class FitResult:
             "levels": self.levels_info(),
             "filled_values": dict(self.accumulator.filled),
             "warnings": list(self.warnings),
+            "robust": self.robust,
+            "collinearity": self.collinearity().to_dict(),
         }
 
     def summary(self) -> str:

@@ -23,7 +23,7 @@ from tallfit.atomic import atomic_path, check_writable
 from tallfit.design.design import Design, check_design_columns, prediction_columns
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, chunk_label
 from tallfit.engine.prefetch import prefetched
-from tallfit.errors import ColumnNotFoundError, OutputError
+from tallfit.errors import ColumnNotFoundError, DesignError, OutputError
 from tallfit.results import FitResult
 from tallfit.solve.exact import reduce_factor
 from tallfit.inputs import as_source, source_label
@@ -37,6 +37,7 @@ class PredictionReport:
     rows_missing_features: int = 0
     rows_outside_training_range: int = 0
     rows_unseen_levels: int = 0
+    rows_without_group_model: int = 0
     out: str | None = None
     columns: list[str] = field(default_factory=list)
 
@@ -44,6 +45,11 @@ class PredictionReport:
         w = []
         if self.rows_missing_features:
             w.append(f"{self.rows_missing_features} rows had a missing feature and got a null prediction")
+        if self.rows_without_group_model:
+            w.append(
+                f"{self.rows_without_group_model} rows belong to groups with no fitted model (unseen or "
+                "not fitted) and got a null prediction"
+            )
         if self.rows_unseen_levels:
             w.append(
                 f"{self.rows_unseen_levels} rows had a categorical level the model never saw and were "
@@ -71,6 +77,13 @@ class _Scorer:
         lo, hi = zip(*model.feature_ranges().values()) if spec.features else ((), ())
         self.lo, self.hi = np.asarray(lo), np.asarray(hi)
         self.first = 1 if spec.has_intercept_column else 0
+        self.absorbed = (model.coding or {}).get("absorbed")
+        self.unseen = unseen
+        if self.absorbed and intervals:
+            raise DesignError(
+                "intervals are not available for a model with an absorbed key (the level effects' "
+                "uncertainty is not kept); predict without intervals"
+            )
         self.n_features = len(spec.features)
         if intervals:
             acc = model.accumulator
@@ -82,8 +95,13 @@ class _Scorer:
 
     def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
         X, ok = self.design.features(batch, label)
+        report.rows_unseen_levels += sum(c.unseen_rows for c in self.design.coders)
+        for c in self.design.coders:
+            c.unseen_rows = 0
         Xk = X[:, self.keep]
         pred = Xk @ self.beta
+        if self.absorbed:
+            pred += self._effects(batch.column(self.absorbed["column"]), report, label)
         pred[~ok] = np.nan
         report.rows += len(pred)
         report.rows_missing_features += int(np.count_nonzero(~ok))
@@ -101,6 +119,60 @@ class _Scorer:
             cols["pi_low"] = pred - self.q * se_new
             cols["pi_high"] = pred + self.q * se_new
         return cols
+
+
+    def _effects(self, keys, report: PredictionReport, label: str) -> np.ndarray:
+        """Absorbed level effect per row; unseen levels per the policy (mean effect if allowed)."""
+        from tallfit.design.categorical import level_strings
+
+        effects = self.absorbed["effects"]
+        levels = level_strings(keys).to_pylist()
+        fallback = None if self.unseen == "error" else self.absorbed["mean_effect"]
+        out = np.empty(len(levels))
+        for i, lvl in enumerate(levels):
+            a = effects.get(lvl)
+            if a is None:
+                if fallback is None:
+                    raise DesignError(
+                        f"{self.absorbed['column']!r} has level {lvl!r} in {label}, which the model "
+                        "never saw, so its absorbed effect is unknown; allow unseen levels to score "
+                        "them with the average effect"
+                    )
+                report.rows_unseen_levels += 1
+                a = fallback
+            out[i] = a
+        return out
+
+
+class _GroupScorer:
+    """Routes each row to its group's model; rows of a group without a model get null."""
+
+    def __init__(self, grouped, intervals: bool, level: float, unseen: str) -> None:
+        self.by = list(grouped.by)
+        self.scorers = {k: _Scorer(m, intervals, level, unseen) for k, m in grouped.groups.items()}
+        self.intervals = intervals
+
+    def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
+        from tallfit.grouped import group_keys
+
+        keys = group_keys([batch.column(c) for c in self.by]).to_pylist()
+        m = batch.num_rows
+        names = ["prediction"] + (["ci_low", "ci_high", "pi_low", "pi_high"] if self.intervals else [])
+        out = {n: np.full(m, np.nan) for n in names}
+        positions: dict[str, list[int]] = {}
+        for i, k in enumerate(keys):
+            positions.setdefault(k, []).append(i)
+        for key, rows in positions.items():
+            scorer = self.scorers.get(key)
+            if scorer is None:
+                report.rows += len(rows)
+                report.rows_without_group_model += len(rows)
+                continue
+            idx = np.asarray(rows)
+            part = scorer.score(batch.take(pa.array(idx)), report, label)
+            for n in names:
+                out[n][idx] = part[n]
+        return out
 
 
 def _out_format(out: Path, out_format: str | None) -> str:
@@ -145,7 +217,11 @@ def predict(
     ``"reference"`` (score as the reference level) or ``"other"`` (as the merged other level, if
     the model has one; else the reference), counted in the report.
     """
-    level = model.inference.conf_level if level is None else float(level)
+    from tallfit.grouped import GroupedFit
+
+    grouped = isinstance(model, GroupedFit)
+    one = next(iter(model.groups.values())) if grouped else model
+    level = one.inference.conf_level if level is None else float(level)
     if not 0.0 < level < 1.0:
         raise ValueError(f"interval level must be between 0 and 1 (got {level})")
     target = None
@@ -154,20 +230,23 @@ def predict(
         target = check_writable(out)
         fmt = _out_format(target, out_format)
     source = as_source(data, format=format, delimiter=delimiter)
-    spec = model.spec
+    spec = one.spec
     where = source_label(source)
     check_design_columns(spec, source.schema, where, predicting=True)
+    by = list(model.by) if grouped else []
+    for col in by:
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
     for col in passthrough:
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
-    read_cols = list(dict.fromkeys(prediction_columns(spec) + list(passthrough)))
-    scorer = _Scorer(model, intervals, level, unseen)
+    read_cols = list(dict.fromkeys(prediction_columns(spec) + by + list(passthrough)))
+    scorer = _GroupScorer(model, intervals, level, unseen) if grouped else _Scorer(model, intervals, level, unseen)
     report = PredictionReport(out=str(target) if target else None)
 
     def tables():
         for chunk in source.batches(read_cols, batch_rows):
             cols = scorer.score(chunk.batch, report, chunk_label(source, chunk))
-            report.rows_unseen_levels = sum(c.unseen_rows for c in scorer.design.coders)
             arrays = [chunk.batch.column(c) for c in passthrough] + [_to_array(v) for v in cols.values()]
             names = list(passthrough) + list(cols)
             if progress is not None:

@@ -13,7 +13,7 @@ import os
 import sys
 
 # command modules, in the order --help lists them; each has NAME, HELP, register(sub), run(args)
-COMMANDS = ["fit", "show", "predict", "demo"]
+COMMANDS = ["fit", "show", "predict", "validate", "report", "compare", "demo"]
 
 EPILOG = "exit codes: 0 ok, 2 bad input or usage, 1 internal error, 130 interrupted"
 

@@ -60,6 +60,8 @@ def add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--where", default=None, metavar="EXPR", help="SQL condition selecting the rows to use, e.g. \"region = 'north-1' AND cpu_util > 0.05\"")
     g.add_argument("--weights", default=None, metavar="COL", help="weight column (rows scaled by √w)")
     g.add_argument("--weight-kind", choices=["analytic", "frequency"], default="analytic", help="analytic: precision weights, each row one observation (default); frequency: a row of weight w counts as w rows")
+    g.add_argument("--absorb", default=None, metavar="COL", help="sweep out a high-cardinality key (a host id) as fixed effects, without one column per level")
+    g.add_argument("--by", type=split_list, default=[], metavar="COLS", help="one model per value of these columns, all from one pass")
     g.add_argument("--missing", action="append", default=[], metavar="COL=POLICY", help="missing-value policy per column (or '*'): drop (default), fail, fill:VALUE, indicator[:VALUE] (repeatable)")
 
 
@@ -83,4 +85,6 @@ def design_kwargs(args) -> dict:
         "weights": args.weights,
         "weight_kind": args.weight_kind,
         "missing": _pairs(args.missing, "--missing") or None,
+        "absorb": args.absorb,
+        "by": args.by,
     }

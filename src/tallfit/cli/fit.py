@@ -22,7 +22,51 @@ def register(sub) -> None:
     f.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     f.add_argument("--rank-tol", type=float, default=None, help="tolerance for calling a term aliased (default 1e-11)")
     f.add_argument("--json", action="store_true", help="print the result as JSON instead of the summary")
+    f.add_argument("--robust", type=str.upper, choices=["HC0", "HC1", "HC2", "HC3"], default=None, help="one more pass for heteroskedasticity-robust errors, shown beside the plain ones")
+    f.add_argument("--cluster", type=split_list, default=None, metavar="COLS", help="one more pass for errors clustered by one or two key columns (e.g. host_id or host_id,day)")
     add_design_options(f)
+    f.add_argument("--solver", choices=["exact", "gd", "cg", "lbfgs", "sgd"], default="exact", help="exact (default) or an iterative solver run after the factor pass, one pass per iteration or epoch")
+    f.add_argument("--solver-options", type=_solver_options, default={}, metavar="K=V,...", help="options of the iterative solver, e.g. epochs=5,learning_rate=0.1,momentum=0.9 (see tallfit compare)")
+    f.add_argument("--cache", action="store_true", help="with an iterative solver: keep the decoded design in a local memory-mapped file for re-passes")
+    f.add_argument("--spill-dir", default=None, help="directory for that cache (default: the system temporary directory)")
+
+
+def _solver_options(text: str) -> dict:
+    """'epochs=5,average=false,schedule=inverse' → {'epochs': 5, 'average': False, 'schedule': 'inverse'}."""
+    import argparse
+
+    out: dict = {}
+    for item in split_list(text):
+        key, sep, value = item.partition("=")
+        if not sep or not key.strip():
+            raise argparse.ArgumentTypeError(f"solver option {item!r} is not KEY=VALUE")
+        v = value.strip()
+        low = v.lower()
+        if low in ("true", "false"):
+            out[key.strip()] = low == "true"
+            continue
+        try:
+            out[key.strip()] = int(v)
+        except ValueError:
+            try:
+                out[key.strip()] = float(v)
+            except ValueError:
+                out[key.strip()] = v
+    return out
+
+
+def _solver_kwargs(args) -> dict:
+    """fit()'s solver keywords; the exact solver passes none, so its call is unchanged."""
+    if args.solver == "exact":
+        if args.solver_options or args.cache:
+            from tallfit.errors import DesignError
+
+            raise DesignError("--solver-options and --cache apply to an iterative --solver (gd, cg, lbfgs, sgd)")
+        return {}
+    opts = dict(args.solver_options)
+    if args.cache:
+        opts.update(cache=True, spill_dir=args.spill_dir)
+    return {"solver": args.solver, "solver_options": opts}
 
 
 def run(args) -> int:
@@ -31,7 +75,7 @@ def run(args) -> int:
     from tallfit.modelfile import encode_json
     from tallfit.solve.exact import DEFAULT_RANK_TOL
 
-    if not (args.features or args.categorical or args.derive or args.interactions or args.poly):
+    if not (args.features or args.categorical or args.derive or args.interactions or args.poly or args.absorb):
         from tallfit.errors import DesignError
 
         raise DesignError("no terms: name the explaining columns with --features (and/or --categorical)")
@@ -51,6 +95,9 @@ def run(args) -> int:
             rank_tol=DEFAULT_RANK_TOL if args.rank_tol is None else args.rank_tol,
             progress=prog,
             **design_kwargs(args),
+            robust=args.robust,
+            cluster=args.cluster,
+            **_solver_kwargs(args),
         )
     if args.out:
         result.save(args.out)

@@ -76,10 +76,10 @@ def finalize_coding(
     reference: dict[str, str] | None = None,
     min_count: int | None = None,
     max_levels: int | None = None,
-) -> tuple[FactorAccumulator, dict | None]:
-    """Recode the factor to the final categorical coding; returns (new accumulator, coding)."""
+) -> tuple[FactorAccumulator, dict | None, np.ndarray | None]:
+    """Recode the factor to the final categorical coding: (new accumulator, coding, map T)."""
     if not spec.categorical:
-        return acc, None
+        return acc, None, None
     reference = reference or {}
     unknown = set(reference) - set(spec.categorical)
     if unknown:
@@ -102,4 +102,4 @@ def finalize_coding(
     T = np.zeros((acc.k, len(names)))
     for j, rows in enumerate(sources):
         T[rows, j] = 1.0
-    return acc.recoded(T, names), {"names": names, "columns": columns}
+    return acc.recoded(T, names), {"names": names, "columns": columns}, T

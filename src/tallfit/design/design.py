@@ -60,7 +60,7 @@ class Design:
         """Numeric features only, default missing policy, no weights: the fast path."""
         s = self.spec
         if self.predicting:
-            return not (s.categorical or s.derive or s.missing)
+            return not (s.categorical or s.derive or s.missing or s.absorb)
         return not (s.categorical or s.needs_frame or s.weights or s.missing or s.absorb or s.by)
 
     # -- one batch ---------------------------------------------------------------------------
@@ -204,6 +204,7 @@ def prediction_columns(spec: ModelSpec) -> list[str]:
     cols = [f for f in spec.features if f not in derived]
     cols += list(sql_inputs(spec.derive, None)) if spec.derive else []
     cols += list(spec.categorical)
+    cols += [spec.absorb] if spec.absorb else []
     return [c for c in dict.fromkeys(cols) if c not in derived]
 
 
@@ -219,9 +220,9 @@ def check_design_columns(spec: ModelSpec, schema: pa.Schema, where: str, predict
     numeric = list(spec.features) if predicting else spec.numeric_columns
     raw_numeric = [c for c in numeric if c not in derived]
     check_columns(schema, raw_numeric, None if predicting else spec.target, where)
-    extra = list(spec.categorical)
+    extra = list(spec.categorical) + ([spec.absorb] if spec.absorb else [])
     if not predicting:
-        extra += [c for c in (spec.weights, spec.absorb) if c] + list(spec.by)
+        extra += [c for c in (spec.weights,) if c] + list(spec.by)
     check_present(schema, extra, where)
     if spec.weights and not predicting:
         check_columns(schema, [spec.weights], None, where)

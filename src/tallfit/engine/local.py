@@ -30,6 +30,13 @@ def chunk_label(source, chunk) -> str:
     return f"{name}, rows {chunk.row_start}-{chunk.row_start + chunk.batch.num_rows - 1}"
 
 
+def chunk_label_of(source, block) -> str:
+    """The file and row range a design block came from."""
+    files = getattr(source, "files", [])
+    name = files[block.file_index].path if 0 <= block.file_index < len(files) else source.describe()
+    return f"{name}, rows {block.row_start}-{block.row_start + block.n_read - 1}"
+
+
 def design_blocks(
     source,
     spec: ModelSpec,
@@ -39,6 +46,7 @@ def design_blocks(
     coding: dict | None = None,
     unseen: str = "error",
     design: Design | None = None,
+    pool=None,
 ) -> Iterator[DesignBlock]:
     """Design blocks for every batch of the source, decoded one thread ahead of the caller.
 
@@ -47,6 +55,8 @@ def design_blocks(
     carries where it came from (``file_index``, ``row_start``) for messages. ``coding`` (a fitted
     model's categorical coding) fixes the columns for passes after the fit; without it, levels
     are discovered. Pass ``design`` to read its state (e.g. filtered-row counts) afterwards.
+    ``pool`` (engine.parallel.BufferPool) lends reusable matrices to plain numeric designs; the
+    consumer then hands each ``block.A`` back with ``pool.give`` once it is done with it.
     """
     where = source_label(source)
     design = design or Design(spec, coding=coding, unseen=unseen)
@@ -61,7 +71,10 @@ def design_blocks(
         for chunk in source.batches(read, batch_rows):
             label = chunk_label(source, chunk)
             try:
-                block = design.block(chunk.batch, label, extra_columns)
+                if pool is not None and design.plain and not extra_columns:
+                    block = _pooled_block(chunk.batch, spec, pool)
+                else:
+                    block = design.block(chunk.batch, label, extra_columns)
             except TallfitError:
                 raise
             except (pa.ArrowException, ValueError, TypeError) as exc:
@@ -74,18 +87,45 @@ def design_blocks(
     return prefetched(produce(), depth=2)
 
 
+def _pooled_block(batch, spec: ModelSpec, pool) -> DesignBlock:
+    """The plain design of one batch, filled into a pooled buffer (given back at once if rows were dropped)."""
+    k = len(spec.input_columns) + (1 if spec.intercept else 0)
+    buf = pool.take((batch.num_rows, k))
+    block = design_block(batch, spec, out=buf)
+    if block.A is not buf:
+        pool.give(buf)
+    block.names = None
+    return block
+
+
 def accumulate(
     source,
     spec: ModelSpec,
     batch_rows: int = DEFAULT_BATCH_ROWS,
     progress: ProgressHook | None = None,
     design: Design | None = None,
+    *,
+    workers: int | None = None,
+    method: str = "qr",
 ) -> FactorAccumulator:
-    """One pass: the triangular factor of [X | y] with counts and ranges (levels discovered)."""
-    acc = FactorAccumulator.create(spec.term_names + [spec.target])
-    for block in design_blocks(source, spec, batch_rows, progress, design=design):
-        acc.update_block(block)
-    return acc
+    """One pass: the triangular factor of [X | y] with counts and ranges (levels discovered).
+
+    With an absorbed key the result is an AbsorbAccumulator (within-level factor + level stats).
+    ``workers`` threads fold in parallel (default: every core; see engine/parallel.py) and
+    ``method`` picks the stable factor ("qr"), the Gram fast path ("gram") or the Gram path with
+    a stable fallback when it is unsafe ("auto"); see engine/passes.py.
+    """
+    if spec.absorb:
+        from tallfit.accumulate.absorb import AbsorbAccumulator
+
+        absorbed = AbsorbAccumulator(spec.absorb, spec.term_names + [spec.target])
+        blocks = design_blocks(source, spec, batch_rows, progress, extra_columns=[spec.absorb], design=design)
+        for block in blocks:
+            absorbed.update_block(block, block.extra[spec.absorb], chunk_label_of(source, block))
+        return absorbed
+    from tallfit.engine.passes import factor_pass
+
+    return factor_pass(source, spec, batch_rows, progress, design, workers=workers, method=method)
 
 
 def residual_products_pass(

@@ -2,8 +2,8 @@
 
 The running factor R (k × k, upper triangular) satisfies R'R = A'A for every row seen so far.
 A block is processed in cache-sized row tiles: each tile is stacked under the current R and
-re-factored by LAPACK's Householder QR (dgeqrf), so the work per row is one Householder
-sweep over k columns and the stacked buffer stays in cache. Householder QR and this merge are
+re-factored by LAPACK's triangle-over-rectangle Householder QR (dtpqrt), so the work per row is
+one Householder sweep over k columns and the tile stays in cache. Householder QR and this merge are
 backward stable (Demmel, Grigori, Hoemmen & Langou, SIAM J. Sci. Comput. 34, 2012), unlike
 accumulating A'A, which squares the condition number.
 
@@ -15,56 +15,94 @@ batches, files, threads and cluster workers all reduce with it.
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 from scipy.linalg import lapack
 
-DEFAULT_TILE_ROWS = 512  # measured fastest of 128-8192 for k = 21 on this machine
+from tallfit.kernels.lapack_calls import TileFolder
+
+#: Rows per tile and LAPACK block size, measured on this machine (2 cores, OpenBLAS) with
+#: bench/bench_kernels.py: narrow factors are fastest with ~8k-row tiles and a small block
+#: (k = 22: ≈ 80-90 ns per row against ≈ 230 for dgeqrf on 512-row tiles); wide ones with tiles of
+#: ~1-4 MB and a block of 32, where dtpqrt's trailing updates become BLAS-3 (k = 501: ≈ 43 GFLOP/s).
+TILE_BYTES = 1 << 20
+MIN_TILE_ROWS = 1024
+MAX_TILE_ROWS = 8192
 
 
 def default_tile_rows(k: int) -> int:
-    """Rows per tile: about 512 for narrow factors, more for wide ones (fewer, larger dgeqrf calls)."""
-    return max(DEFAULT_TILE_ROWS, 12 * k)
+    """Rows per tile: about a megabyte of rows, between 1024 and 8192 rows."""
+    return int(min(MAX_TILE_ROWS, max(MIN_TILE_ROWS, TILE_BYTES // (8 * max(1, k)))))
 
 
-def _lwork(rows: int, k: int) -> int:
-    # dgeqrf's optimal workspace is k * block size; a fixed generous size avoids a query per call.
-    return max(1, k * 64)
+def default_block(k: int) -> int:
+    """LAPACK block size for dtpqrt: small for narrow factors (level-2 work), 32 for wide ones."""
+    return max(1, min(k, 6 if k <= 40 else 16 if k <= 160 else 32))
 
 
 def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None) -> np.ndarray:
     """Return the triangular factor of [R; A] (k × k), processing A in tiles of `tile_rows` rows.
 
+    Each tile is folded by LAPACK's dtpqrt, the Householder QR of a triangle stacked on a
+    rectangle, which never touches the triangle's zeros (same reflectors as dgeqrf on [R; tile]).
     R may be any k × k upper-triangular array (zeros for a fresh factor). A is (m, k) float64;
-    Fortran order is cheapest. Neither input is modified.
+    Fortran order is cheapest. Neither input is modified. The GIL is released while LAPACK works (see lapack_calls).
     """
     m, k = A.shape
     if R.shape != (k, k):
         raise ValueError(f"factor is {R.shape}, block has {k} columns")
     if m == 0:
         return R.copy()
+    if k == 0:
+        return R.copy()
     tile_rows = default_tile_rows(k) if tile_rows is None else max(1, int(tile_rows))
-    rows = k + min(tile_rows, m)
-    buf = np.zeros((rows, k), dtype=np.float64, order="F")
-    lwork = _lwork(rows, k)
-    current = R
+    folder = _folder(k, min(tile_rows, m))
+    current = np.array(np.triu(R), dtype=np.float64, order="F")
     for start in range(0, m, tile_rows):
-        stop = min(start + tile_rows, m)
-        t = stop - start
-        work = buf[: k + t]
-        work[:k] = current
-        work[k:] = A[start:stop]
-        qr, _tau, _work, info = lapack.dgeqrf(work, lwork=lwork, overwrite_a=1)
-        if info != 0:  # pragma: no cover - LAPACK argument error, a programming fault
-            raise RuntimeError(f"dgeqrf failed with info={info}")
-        current = np.triu(qr[:k])
-        if not np.all(np.isfinite(np.diagonal(current))):
-            raise FloatingPointError("non-finite value in the triangular factor")
+        folder.fold(current, A[start : start + tile_rows])
+    current = np.triu(current)
+    if not np.all(np.isfinite(np.diagonal(current))):
+        raise FloatingPointError("non-finite value in the triangular factor")
     return current
 
 
+_local = threading.local()
+
+
+def _folder(k: int, tile_rows: int) -> TileFolder:
+    """This thread's tile buffers for (k, tile_rows), kept for the next block of the same shape."""
+    cache = getattr(_local, "folders", None)
+    if cache is None:
+        cache = _local.folders = {}
+    key = (k, tile_rows)
+    folder = cache.get(key)
+    if folder is None:
+        if len(cache) > 8:
+            cache.clear()
+        folder = cache[key] = TileFolder(k, tile_rows, default_block(k))
+    return folder
+
+
 def merge_factors(Ra: np.ndarray, Rb: np.ndarray) -> np.ndarray:
-    """Triangular factor of the union of the rows behind two factors: triu(qr([Ra; Rb]))."""
-    return fold_rows(Ra, Rb, tile_rows=Rb.shape[0] or 1)
+    """Triangular factor of the union of the rows behind two factors: triu(qr([Ra; Rb])).
+
+    Rb is triangular too, so dtpqrt is told so (its pentagonal part is the whole of Rb).
+    """
+    k = Ra.shape[0]
+    if Ra.shape != (k, k) or Rb.shape != (k, k):
+        raise ValueError(f"cannot merge factors of shapes {Ra.shape} and {Rb.shape}")
+    if k == 0:
+        return Ra.copy()
+    top = np.array(np.triu(Ra), dtype=np.float64, order="F")
+    bottom = np.array(np.triu(Rb), dtype=np.float64, order="F")
+    out, _v, _t, info = lapack.dtpqrt(k, default_block(k), top, bottom, overwrite_a=1, overwrite_b=1)
+    if info != 0:  # pragma: no cover - LAPACK argument error, a programming fault
+        raise RuntimeError(f"dtpqrt failed with info={info}")
+    out = np.triu(out)
+    if not np.all(np.isfinite(np.diagonal(out))):
+        raise FloatingPointError("non-finite value in the triangular factor")
+    return out
 
 
 def normalize_signs(R: np.ndarray) -> np.ndarray:

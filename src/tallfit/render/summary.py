@@ -33,6 +33,26 @@ def _effects(result: FitResult) -> list[str]:
     return out
 
 
+def _robust_lines(result: FitResult) -> list[str]:
+    """Robust (or clustered) errors beside the plain ones, when a second pass computed them."""
+    r = result.robust
+    if not r:
+        return []
+    est = r["estimators"][r["selected"]]
+    level = f"{r['conf_level']:.0%}"
+    rows = [("term", "std.err", r["selected"], "ratio", "p", f"{level} interval")]
+    for i, name in enumerate(result.terms):
+        se, plain = est["std_error"][i], result.inference.std_error[i]
+        rows.append((name, sig(plain, 3), sig(se, 3), f"{se / plain:.2f}" if plain else "—",
+                     pval(est["p_value"][i]), f"{sig(est['ci_low'][i], 6)} … {sig(est['ci_high'][i], 6)}"))
+    widths = [max(len(row[c]) for row in rows) for c in range(len(rows[0]))]
+    out = ["", f"robust    {r['selected']} errors beside the plain ones (t on {count(est['df'])} df)"]
+    out += ["  " + "  ".join([row[0].ljust(widths[0])] + [row[c].rjust(widths[c]) for c in range(1, len(row))])
+            for row in rows]
+    out.extend(f"  ! {note}" for note in r.get("notes", []))
+    return out
+
+
 def _cautions(result: FitResult) -> list[str]:
     k = len(result.terms) - (1 if result.spec.intercept else 0)
     lines = [
@@ -70,6 +90,21 @@ def _design_lines(result: FitResult) -> list[str]:
     return [f"design    {lines[0]}"] + [f"          {ln}" for ln in lines[1:]] if lines else []
 
 
+def _relative_lines(collin, target: str) -> list[str]:
+    """Standardised estimates and VIFs, one compact line per feature (solve/collinearity.py)."""
+    if not collin.terms:
+        return []
+    out = [f"          standardised design condition {sig(collin.condition, 3)}"
+           + ("" if collin.centred else " (uncentred: no intercept)")]
+    w = max(len(t) for t in collin.terms)
+    head = f"sd of {target} per sd of the term" if collin.std_estimate is not None else ""
+    out.append(f"relative  {'term'.ljust(w)}  {'std.est':>9}  {'VIF':>8}  {head}".rstrip())
+    for i, t in enumerate(collin.terms):
+        std = sig(collin.std_estimate[i], 4) if collin.std_estimate is not None else "—"
+        out.append(f"          {t.ljust(w)}  {std:>9}  {sig(collin.vif[i], 4):>8}")
+    return out
+
+
 def render_text(result: FitResult) -> str:
     inf = result.inference
     spec = result.spec
@@ -87,6 +122,7 @@ def render_text(result: FitResult) -> str:
     out.append("")
     out.append(f"effects   change in {spec.target} per unit of each term, the others held fixed")
     out.extend(_effects(result))
+    out.extend(_robust_lines(result))
     out.append("")
     r2_kind = "R²" if inf.centered else "R² (uncentred, no intercept)"
     out.append(
@@ -108,6 +144,8 @@ def render_text(result: FitResult) -> str:
     if result.refinement:
         changes = ", ".join(f"{c:.1e}" for c in result.refinement["max_relative_change"])
         out.append(f"          refined in {result.refinement['passes']} passes (largest relative corrections {changes})")
+    collin = result.collinearity()
+    out.extend(_relative_lines(collin, spec.target))
     ranges = result.feature_ranges()
     if ranges:
         out.append("")
@@ -115,10 +153,10 @@ def render_text(result: FitResult) -> str:
         w = max(len(f) for f in ranges)
         for f, (lo, hi) in ranges.items():
             out.append(f"  {f.ljust(w)}  {sig(lo)} … {sig(hi)}")
-    if result.warnings:
+    if result.warnings or collin.warnings:
         out.append("")
         out.append("notes")
-        out.extend(f"  ! {w}" for w in result.warnings)
+        out.extend(f"  ! {w}" for w in list(result.warnings) + collin.warnings)
     out.append("")
     out.append("read with care")
     out.extend(f"  · {c}" if not c.startswith("  ") else f"  {c}" for c in _cautions(result))

@@ -59,6 +59,22 @@ def observations(spec: ModelSpec, acc: FactorAccumulator) -> tuple[int, float]:
     return acc.n_used, float(acc.weight_log_sum or 0.0)
 
 
+def absorb_statistics(inf, absorbed: dict, G: int) -> None:
+    """With an absorbed key: R² over the grand mean (as a fit with one indicator per level would
+    report it), the within R² kept apart, and AIC/BIC counting the G absorbed parameters."""
+    import numpy as _np
+
+    within = inf.r_squared
+    tss = float(absorbed["total_ss"])
+    inf.tss = tss
+    inf.r_squared = 1.0 - inf.rss / tss if tss > 0 else float("nan")
+    inf.adj_r_squared = 1.0 - (1.0 - inf.r_squared) * (inf.n_used - 1) / inf.df_resid
+    k = len(inf.estimate) + G
+    inf.aic = -2.0 * inf.log_likelihood + 2.0 * k
+    inf.bic = -2.0 * inf.log_likelihood + k * _np.log(inf.n_used)
+    absorbed["r_squared_within"] = within
+
+
 def fit_from_accumulator(
     spec: ModelSpec,
     acc: FactorAccumulator,
@@ -68,12 +84,14 @@ def fit_from_accumulator(
     conf_level: float = 0.95,
     beta: np.ndarray | None = None,
     rss: float | None = None,
+    absorbed: dict | None = None,
     **extra: Any,
 ) -> FitResult:
     """Solve and infer from the factor alone (``beta``/``rss`` override the factor's, after refinement)."""
     if acc.n_used == 0:
         raise DesignError(_no_rows_message(acc))
-    p = len(acc.names) - 1
+    G = int(absorbed["levels"]) if absorbed else 0
+    p = len(acc.names) - 1 + G
     if acc.n_used <= p:
         raise DesignError(
             f"{acc.n_used} usable rows for {p} coefficients: a fit with inference needs more rows "
@@ -86,8 +104,10 @@ def fit_from_accumulator(
     n_obs, log_w = observations(spec, acc)
     inference = infer(
         sol.R11, sol.r12, sol.rho, sol.beta, n_obs, spec.has_intercept_column, conf_level,
-        rss=rss, log_weight_sum=log_w,
+        rss=rss, log_weight_sum=log_w, absorbed_levels=G,
     )
+    if absorbed:
+        absorb_statistics(inference, absorbed, G)
     missing = {k: v for k, v in acc.dropped_by_column.items() if not k.startswith("(")}
     if missing:
         warnings.append(

@@ -1,0 +1,182 @@
+"""Per-group models (``by``): one model per value of the grouping columns, all in one pass.
+
+Each group gets its own factor accumulator, filled from the same scan (memory O(groups × k²),
+guarded by a budget). Groups with too few rows, or whose terms are aliased, are listed with the
+reason instead of stopping the whole fit. The model file holds every group, and prediction
+routes each row to its group's model.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.design.categorical import level_strings
+from tallfit.errors import DesignError
+from tallfit.results import FitResult
+
+KEY_SEP = " | "
+DEFAULT_MEMORY_BUDGET = 2 << 30  # bytes of factors; common practice for a modest server
+
+
+def group_keys(columns: list[pa.Array]) -> pa.Array:
+    """One string key per row from the grouping columns (nulls give a null key)."""
+    strings = [level_strings(c) for c in columns]
+    if len(strings) == 1:
+        return strings[0]
+    return pc.binary_join_element_wise(*strings, KEY_SEP, null_handling="emit_null")
+
+
+@dataclass
+class GroupedFit:
+    """Models per group, the groups that could not be fitted, and how the groups were formed."""
+
+    by: list[str]
+    groups: dict[str, FitResult]
+    failed: dict[str, str] = field(default_factory=dict)
+    rows: dict[str, int] = field(default_factory=dict)
+    options: dict[str, Any] = field(default_factory=dict)
+    n_read: int = 0
+    n_used: int = 0
+    dropped_by_column: dict[str, int] = field(default_factory=dict)
+    source: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def spec(self):
+        return next(iter(self.groups.values())).spec if self.groups else None
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "by": list(self.by),
+            "groups": [
+                {"key": k, "n_used": r.inference.n_used, "r_squared": r.inference.r_squared,
+                 "residual_std": r.inference.residual_std, "terms": r.term_table()}
+                for k, r in self.groups.items()
+            ],
+            "failed": [{"key": k, "rows": self.rows.get(k, 0), "reason": v} for k, v in self.failed.items()],
+            "n_read": self.n_read,
+            "n_used": self.n_used,
+            "dropped_rows": {"total": self.n_read - self.n_used, "by_column": dict(self.dropped_by_column)},
+            "source": self.source,
+        }
+
+    def summary(self) -> str:
+        from tallfit.render.groups import render_groups
+
+        return render_groups(self)
+
+    def save(self, path) -> None:
+        from tallfit.modelfile import save_grouped
+
+        save_grouped(self, path)
+
+    def predict(self, data, **kwargs):
+        from tallfit.scoring import predict
+
+        return predict(self, data, **kwargs)
+
+
+class GroupAccumulators:
+    """One FactorAccumulator per group key, created on first sight, within a memory budget."""
+
+    def __init__(self, names: list[str], by: list[str], budget: int = DEFAULT_MEMORY_BUDGET) -> None:
+        self.names = list(names)
+        self.by = by
+        self.budget = budget
+        self.accs: dict[str, FactorAccumulator] = {}
+        self.null_rows = 0
+        self.n_read = 0
+        self.n_used = 0
+        self.dropped: dict[str, int] = {}
+
+    def _check_budget(self, k: int) -> None:
+        need = len(self.accs) * k * k * 8
+        if need > self.budget:
+            raise DesignError(
+                f"grouping by {', '.join(self.by)} has reached {len(self.accs):,} groups, whose factors "
+                f"would need more than {self.budget / 2**30:.1f} GiB; group by coarser columns, or "
+                "absorb a high-cardinality key instead of fitting a model per value"
+            )
+
+    def update_block(self, block) -> None:
+        names = block.names or self.names
+        keys = group_keys([block.extra[c] for c in self.by])
+        enc = pc.dictionary_encode(keys)
+        if isinstance(enc, pa.ChunkedArray):
+            enc = enc.combine_chunks()
+        idx = enc.indices.to_numpy(zero_copy_only=False)
+        nulls = enc.indices.is_null().to_numpy(zero_copy_only=False)
+        self.null_rows += int(nulls.sum())
+        dictionary = enc.dictionary.to_pylist()
+        codes = np.where(nulls, -1, idx).astype(np.int64)
+        order = np.argsort(codes, kind="stable")
+        sorted_codes = codes[order]
+        bounds = np.flatnonzero(np.diff(sorted_codes)) + 1
+        for part in np.split(order, bounds):
+            if part.size == 0 or codes[part[0]] < 0:
+                continue
+            key = dictionary[codes[part[0]]]
+            acc = self.accs.get(key)
+            if acc is None:
+                acc = self.accs[key] = FactorAccumulator.create(names)
+                self._check_budget(len(names))
+            if acc.names != names:
+                acc.expand(names)
+            A = np.asfortranarray(block.A[np.sort(part)])
+            acc.update(A, n_read=A.shape[0])
+        self.n_read += block.n_read
+        self.n_used += block.A.shape[0]
+        for name, count in block.dropped_by_column.items():
+            self.dropped[name] = self.dropped.get(name, 0) + count
+        if block.level_counts:
+            self._count_levels(block, codes, dictionary)
+
+    def _count_levels(self, block, codes, dictionary) -> None:
+        """Rows per categorical level, per group (from the indicator columns of the block)."""
+        names = block.names
+        for col in block.level_counts:
+            prefix = f"{col}["
+            cols = [(i, n[len(prefix):-1]) for i, n in enumerate(names) if n.startswith(prefix) and n.endswith("]")]
+            for code in np.unique(codes[codes >= 0]):
+                rows = codes == code
+                acc = self.accs[dictionary[code]]
+                d = acc.level_counts.setdefault(col, {})
+                sub = block.A[rows]
+                for i, lvl in cols:
+                    c = int(np.count_nonzero(sub[:, i]))
+                    if c:
+                        d[lvl] = d.get(lvl, 0) + c
+
+
+def fit_groups(source, spec, batch_rows, progress, design, finalize, budget: int = DEFAULT_MEMORY_BUDGET) -> GroupedFit:
+    """One pass filling a factor per group, then a model per group (``finalize(acc) -> FitResult``)."""
+    from tallfit.engine.local import design_blocks
+
+    groups = GroupAccumulators(spec.term_names + [spec.target], list(spec.by), budget)
+    for block in design_blocks(source, spec, batch_rows, progress, extra_columns=list(spec.by), design=design):
+        groups.update_block(block)
+    fitted: dict[str, FitResult] = {}
+    failed: dict[str, str] = {}
+    rows = {}
+    for key in sorted(groups.accs):
+        acc = groups.accs[key]
+        rows[key] = acc.n_used
+        try:
+            fitted[key] = finalize(acc)
+        except DesignError as exc:
+            failed[key] = str(exc)
+    if not fitted:
+        detail = "; ".join(f"{k}: {v}" for k, v in list(failed.items())[:3])
+        raise DesignError(f"no group could be fitted ({len(failed)} groups; {detail})")
+    dropped = dict(groups.dropped)
+    if groups.null_rows:
+        dropped["(missing group key)"] = groups.null_rows
+    return GroupedFit(
+        by=list(spec.by), groups=fitted, failed=failed, rows=rows,
+        n_read=groups.n_read, n_used=groups.n_used - groups.null_rows, dropped_by_column=dropped,
+    )

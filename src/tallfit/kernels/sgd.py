@@ -1,0 +1,103 @@
+"""Mini-batch SGD over one block of rows (numba), beside a plain-numpy reference for tests.
+
+For each mini-batch B (rows ``order[s : s + m]`` of the block, standardised on the fly as
+z = (x − shift)·inv_scale), with the loss ½‖Zc − y‖²/|B| and an optional L2 penalty
+½λ‖mask·c‖²:
+
+    g = Z_Bᵀ(Z_B c − y_B)/|B| + λ·mask·c
+    v ← μ v − η_t g,   c ← c + v                         (heavy-ball momentum μ; μ = 0: plain SGD)
+    c̄ ← c̄ + (c − c̄)/N  when averaging                   (Polyak & Juditsky, SIAM J. Control
+                                                             Optim. 30, 1992)
+
+with η_t = η₀ (constant) or η₀/(1 + decay·t)^power (inverse scaling), t the global step count.
+``state`` carries [t, N, Σ mini-batch losses at the pre-update iterate, steps in this call]
+between calls. The last mini-batch of a block may be shorter.
+"""
+
+from __future__ import annotations
+
+import numba
+import numpy as np
+
+CONSTANT, INVERSE = 0, 1
+
+
+@numba.njit(cache=True, nogil=True)
+def _rate(eta0, schedule, decay, power, t):
+    if schedule == INVERSE:
+        return eta0 / (1.0 + decay * t) ** power
+    return eta0
+
+
+@numba.njit(cache=True, nogil=True)
+def sgd_block(X, y, order, shift, inv_scale, c, v, cbar, state, batch_size, eta0, schedule, decay, power,
+              momentum, l2, mask, averaging, trace):
+    """Run the mini-batches of one block in place on c, v, cbar, state; rows of ``trace`` (if any)
+    receive c after each step."""
+    m = order.shape[0]
+    p = c.shape[0]
+    z = np.empty((batch_size, p))
+    r = np.empty(batch_size)
+    g = np.empty(p)
+    start = 0
+    while start < m:
+        stop = min(start + batch_size, m)
+        nb = stop - start
+        loss = 0.0
+        for i in range(nb):
+            row = order[start + i]
+            acc = 0.0
+            for j in range(p):
+                zij = (X[row, j] - shift[j]) * inv_scale[j]
+                z[i, j] = zij
+                acc += zij * c[j]
+            ri = acc - y[row]
+            r[i] = ri
+            loss += ri * ri
+        for j in range(p):
+            g[j] = 0.0
+        for i in range(nb):
+            ri = r[i]
+            for j in range(p):
+                g[j] += z[i, j] * ri
+        eta = _rate(eta0, schedule, decay, power, state[0])
+        for j in range(p):
+            gj = g[j] / nb + l2 * mask[j] * c[j]
+            v[j] = momentum * v[j] - eta * gj
+            c[j] += v[j]
+        state[0] += 1.0
+        state[2] += 0.5 * loss / nb
+        if averaging:
+            state[1] += 1.0
+            w = 1.0 / state[1]
+            for j in range(p):
+                cbar[j] += (c[j] - cbar[j]) * w
+        k = int(state[3])
+        if k < trace.shape[0]:
+            for j in range(p):
+                trace[k, j] = c[j]
+        state[3] += 1.0
+        start = stop
+
+
+def sgd_block_reference(X, y, order, shift, inv_scale, c, v, cbar, state, batch_size, eta0, schedule, decay,
+                        power, momentum, l2, mask, averaging, trace):
+    """The same steps as :func:`sgd_block` in plain numpy (one mini-batch at a time)."""
+    m = order.shape[0]
+    for start in range(0, m, batch_size):
+        rows = order[start : start + batch_size]
+        Z = (X[rows, :] - shift) * inv_scale
+        r = Z @ c - y[rows]
+        eta = eta0 if schedule == CONSTANT else eta0 / (1.0 + decay * state[0]) ** power
+        g = Z.T @ r / len(rows) + l2 * mask * c
+        v[:] = momentum * v - eta * g
+        c += v
+        state[0] += 1.0
+        state[2] += 0.5 * float(r @ r) / len(rows)
+        if averaging:
+            state[1] += 1.0
+            cbar += (c - cbar) / state[1]
+        k = int(state[3])
+        if k < trace.shape[0]:
+            trace[k] = c
+        state[3] += 1.0

@@ -1,0 +1,46 @@
+"""The human summary of per-group models: one line per group, then the groups not fitted."""
+
+from __future__ import annotations
+
+from tallfit.render.numbers import count, sig
+
+MAX_TERMS_SHOWN = 6
+
+
+def render_groups(grouped) -> str:
+    groups = grouped.groups
+    first = next(iter(groups.values()))
+    spec = first.spec
+    terms = first.terms[:MAX_TERMS_SHOWN]
+    head = f"tallfit ▸ {spec.target} per {' × '.join(grouped.by)}: {len(groups)} models"
+    out = [head, "─" * 78]
+    if grouped.source.get("description"):
+        out.append(f"data      {grouped.source['description']}")
+    out.append(f"rows      {count(grouped.n_read)} read · {count(grouped.n_used)} used")
+    out.append("")
+    out.append("estimate (std.err) per group" + (f"; first {MAX_TERMS_SHOWN} terms" if len(first.terms) > MAX_TERMS_SHOWN else ""))
+    header = ["group", "rows", "R²", "resid sd"] + terms
+    rows = [header]
+    for key, r in groups.items():
+        inf = r.inference
+        cells = [key, count(inf.n_used), f"{inf.r_squared:.4f}", sig(inf.residual_std, 4)]
+        coef = dict(zip(r.terms, zip(inf.estimate, inf.std_error)))
+        for t in terms:
+            cells.append(f"{sig(coef[t][0], 5)} ({sig(coef[t][1], 2)})" if t in coef else "—")
+        rows.append(cells)
+    widths = [max(len(r[c]) for r in rows) for c in range(len(header))]
+    for i, r in enumerate(rows):
+        out.append("  " + "  ".join([r[0].ljust(widths[0])] + [r[j].rjust(widths[j]) for j in range(1, len(r))]))
+        if i == 0:
+            out.append("  " + "  ".join("·" * w for w in widths))
+    if grouped.failed:
+        out.append("")
+        out.append(f"not fitted ({len(grouped.failed)} groups)")
+        for key, why in grouped.failed.items():
+            out.append(f"  {key} ({count(grouped.rows.get(key, 0))} rows): {why}")
+    out.append("")
+    out.append("read with care")
+    out.append("  · each group's estimates describe that group's rows only; comparing groups by eye over")
+    out.append("    many groups finds differences by chance alone (multiple comparisons)")
+    out.append("  · association, not causation; plain errors assume independent rows of equal noise")
+    return "\n".join(out) + "\n"

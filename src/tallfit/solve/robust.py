@@ -1,0 +1,254 @@
+"""Heteroskedasticity-consistent and cluster-robust covariance from second-pass sums.
+
+The sandwich V = (X'X)⁻¹ Ω (X'X)⁻¹ with Ω = Σ ωᵢ eᵢ² xᵢxᵢᵀ (White, Econometrica 48, 1980):
+HC0 ωᵢ = 1, HC1 n/(n − p), HC2 1/(1 − hᵢ), HC3 1/(1 − hᵢ)² (MacKinnon & White, J. Econometrics
+29, 1985), with leverage hᵢ = ‖R11⁻ᵀxᵢ‖². Everything is accumulated in the coordinates
+zᵢ = R11⁻ᵀxᵢ, where the design is orthonormal (Σ zᵢzᵢᵀ = I): Ω_z = Σ ωᵢeᵢ²zᵢzᵢᵀ and
+V = R11⁻¹ Ω_z R11⁻ᵀ, so (X'X)⁻¹ is never formed and the sums stay well scaled.
+
+Clusters (CRV1, e.g. Cameron & Miller, J. Human Resources 50, 2015): score sums
+s_c = Σ_{i∈c} zᵢeᵢ, Ω_z = Σ_c s_c s_cᵀ, times G/(G − 1)·(n − 1)/(n − p); memory O(G·p).
+Two-way by keys A and B: V = V_A + V_B − V_{A∩B}, each term with its own factor (Cameron,
+Gelbach & Miller, JBES 29, 2011); when that is not positive semi-definite, its negative
+eigenvalues are set to zero as they propose (§2.3), and a note says so.
+
+Inference uses Student t with n − p degrees of freedom for HC0–HC3 and G − 1 for clusters
+(min(G_A, G_B) − 1 for two-way), the choices statsmodels makes with ``use_t=True`` and its
+default ``df_correction``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy import stats
+from scipy.linalg import solve_triangular
+
+from tallfit.diagnostics.kernels import scatter_rows
+from tallfit.errors import DesignError
+
+KINDS = ("HC0", "HC1", "HC2", "HC3")
+FEW_CLUSTERS = 50  # common practice: fewer than about 40-50 clusters make cluster errors unreliable
+LEVERAGE_ONE = 1.0 - 1e-10  # a row with hᵢ this close to 1 alone determines a coefficient
+
+
+@dataclass
+class SandwichSums:
+    """Σ eᵢ²zᵢzᵢᵀ, Σ eᵢ²zᵢzᵢᵀ/(1 − hᵢ), Σ eᵢ²zᵢzᵢᵀ/(1 − hᵢ)², and Σ zᵢeᵢ (≈ 0 on the fitting data)."""
+
+    p: int
+    n: int = 0
+    meat0: np.ndarray = None  # type: ignore[assignment]
+    meat2: np.ndarray = None  # type: ignore[assignment]
+    meat3: np.ndarray = None  # type: ignore[assignment]
+    score_sum: np.ndarray = None  # type: ignore[assignment]
+    rss: float = 0.0
+    max_leverage: float = 0.0
+
+    @classmethod
+    def create(cls, p: int) -> "SandwichSums":
+        z = np.zeros((p, p))
+        return cls(p, 0, z.copy(), z.copy(), z.copy(), np.zeros(p))
+
+    def update(self, Z: np.ndarray, e: np.ndarray, h: np.ndarray) -> np.ndarray:
+        """Fold one block (Z = rows zᵢᵀ, residuals, leverages); returns the scores zᵢeᵢ."""
+        W = Z * e[:, None]
+        self.meat0 += W.T @ W
+        with np.errstate(divide="ignore", invalid="ignore"):
+            one_minus = 1.0 - np.minimum(h, 1.0)
+            W2 = W / np.sqrt(one_minus)[:, None]
+            W3 = W / one_minus[:, None]
+        self.meat2 += W2.T @ W2
+        self.meat3 += W3.T @ W3
+        self.score_sum += W.sum(axis=0)
+        self.rss += float(e @ e)
+        self.n += len(e)
+        if len(h):
+            self.max_leverage = max(self.max_leverage, float(h.max()))
+        return W
+
+    def merge(self, other: "SandwichSums") -> "SandwichSums":
+        return SandwichSums(
+            self.p, self.n + other.n, self.meat0 + other.meat0, self.meat2 + other.meat2,
+            self.meat3 + other.meat3, self.score_sum + other.score_sum, self.rss + other.rss,
+            max(self.max_leverage, other.max_leverage),
+        )
+
+    def normal_equations_residual(self) -> float:
+        """max |Σ zᵢeᵢ| / ‖e‖: rounding size on the data the model was fitted on, O(1) on other data."""
+        norm = np.sqrt(self.rss)
+        return float(np.max(np.abs(self.score_sum)) / norm) if norm > 0 else 0.0
+
+
+@dataclass
+class ClusterSums:
+    """Score sums per cluster of one key (or one pair of keys), growing as new clusters appear."""
+
+    name: str
+    p: int
+    S: np.ndarray = field(default=None)  # type: ignore[assignment]
+    groups: int = 0
+
+    def __post_init__(self) -> None:
+        if self.S is None:
+            self.S = np.zeros((1024, self.p), order="F")
+
+    def update(self, codes: np.ndarray, W: np.ndarray, groups: int) -> None:
+        """Add the scores W (rows) to clusters ``codes`` (0 ≤ code < groups, groups so far)."""
+        if groups > self.S.shape[0]:
+            grown = np.zeros((max(groups, 2 * self.S.shape[0]), self.p), order="F")
+            grown[: self.S.shape[0]] = self.S
+            self.S = grown
+        self.groups = max(self.groups, groups)
+        scatter_rows(np.ascontiguousarray(codes, dtype=np.int64), np.asfortranarray(W), self.S)
+
+    def meat(self) -> np.ndarray:
+        S = self.S[: self.groups]
+        return S.T @ S
+
+
+def _bread(R11: np.ndarray) -> np.ndarray:
+    return solve_triangular(R11, np.eye(R11.shape[0]))
+
+
+def _sandwich(Rinv: np.ndarray, meat_z: np.ndarray) -> np.ndarray:
+    V = Rinv @ meat_z @ Rinv.T
+    return (V + V.T) / 2.0
+
+
+def hc_covariance(R11: np.ndarray, sums: SandwichSums, kind: str) -> np.ndarray:
+    """HC0, HC1, HC2 or HC3 covariance of the coefficients."""
+    kind = kind.upper()
+    if kind not in KINDS:
+        raise DesignError(f"unknown robust covariance {kind!r}: choose one of {', '.join(KINDS)}")
+    n, p = sums.n, sums.p
+    if kind in ("HC2", "HC3") and sums.max_leverage >= LEVERAGE_ONE:
+        return np.full((p, p), np.nan)
+    meat = {"HC0": sums.meat0, "HC1": sums.meat0, "HC2": sums.meat2, "HC3": sums.meat3}[kind]
+    V = _sandwich(_bread(R11), meat)
+    return V * (n / (n - p)) if kind == "HC1" else V
+
+
+def one_way_factor(groups: int, n: int, p: int) -> float:
+    """CRV1 small-sample factor G/(G − 1)·(n − 1)/(n − p)."""
+    return groups / (groups - 1.0) * (n - 1.0) / (n - p)
+
+
+def cluster_covariance(R11: np.ndarray, clusters: list[ClusterSums], n: int) -> tuple[np.ndarray, list[str]]:
+    """One-way (one ClusterSums) or two-way (A, B, A∩B) cluster-robust covariance, with notes."""
+    p = R11.shape[0]
+    Rinv = _bread(R11)
+    notes: list[str] = []
+    for c in clusters:
+        if c.groups < 2:
+            raise DesignError(
+                f"cluster column {c.name!r} has {c.groups} distinct value(s) in the used rows; "
+                "clustered errors need at least 2 clusters (and about 50 to be reliable)"
+            )
+
+    def one(c: ClusterSums) -> np.ndarray:
+        return _sandwich(Rinv, c.meat()) * one_way_factor(c.groups, n, p)
+
+    if len(clusters) == 1:
+        V = one(clusters[0])
+    elif len(clusters) == 3:
+        a, b, ab = clusters
+        V = one(a) + one(b) - one(ab)
+        w, Q = np.linalg.eigh(V)
+        if w.min() < -1e-12 * max(abs(w.max()), np.finfo(float).tiny):
+            notes.append(
+                f"the two-way covariance by {a.name} and {b.name} had {int(np.sum(w < 0))} negative "
+                "eigenvalue(s); they were set to zero (Cameron, Gelbach & Miller 2011, §2.3)"
+            )
+            V = (Q * np.maximum(w, 0.0)) @ Q.T
+    else:  # pragma: no cover - the engine builds one or three
+        raise ValueError("clusters must be one key, or two keys and their intersection")
+    G = min(c.groups for c in clusters[:2])
+    names = " and ".join(c.name for c in clusters[:2])
+    if G < FEW_CLUSTERS:
+        notes.append(
+            f"only {G} clusters by {names}: with fewer than about 40-50 clusters (common practice) "
+            "clustered standard errors are themselves unreliable and tend to be too small; read "
+            "the p-values with caution (a wild cluster bootstrap is the usual remedy)"
+        )
+    return V, notes
+
+
+def coefficient_table(beta: np.ndarray, V: np.ndarray, df: int, level: float) -> dict[str, Any]:
+    """Standard errors, t, two-sided p and intervals (Student t on ``df``) from a covariance."""
+    se = np.sqrt(np.maximum(np.diagonal(V), 0.0)) if np.all(np.isfinite(V)) else np.full(len(beta), np.nan)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = beta / se
+    q = float(stats.t.ppf(0.5 + level / 2.0, df))
+    return {
+        "std_error": se.tolist(),
+        "t": t.tolist(),
+        "p_value": (2.0 * stats.t.sf(np.abs(t), df)).tolist(),
+        "ci_low": (beta - q * se).tolist(),
+        "ci_high": (beta + q * se).tolist(),
+        "df": int(df),
+        "covariance": V.tolist(),
+    }
+
+
+def robust_results(
+    R11: np.ndarray,
+    beta: np.ndarray,
+    sums: SandwichSums,
+    clusters: list[ClusterSums],
+    *,
+    selected: str | None,
+    level: float,
+) -> dict[str, Any]:
+    """The ``robust`` value of a FitResult: every HC estimator, the clustered one if asked."""
+    n, p = sums.n, sums.p
+    if n <= p:
+        raise DesignError(f"{n} rows for {p} coefficients: robust errors need more rows than coefficients")
+    estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k), n - p, level) for k in KINDS}
+    notes: list[str] = []
+    if sums.max_leverage >= LEVERAGE_ONE:
+        notes.append(
+            "a row has leverage 1 (it alone determines a coefficient), so HC2 and HC3 are undefined; "
+            "use HC0/HC1 or remove that row"
+        )
+    info: dict[str, Any] = {}
+    if clusters:
+        V, cnotes = cluster_covariance(R11, clusters, n)
+        notes.extend(cnotes)
+        key = "cluster:" + "+".join(c.name for c in clusters[:2])
+        G = min(c.groups for c in clusters[:2])
+        estimators[key] = coefficient_table(beta, V, G - 1, level)
+        info = {c.name: int(c.groups) for c in clusters}
+        selected = key  # clustered errors are also robust to unequal noise: they are the headline
+    else:
+        selected = (selected or "HC3").upper()
+        if selected not in estimators:
+            raise DesignError(f"unknown robust covariance {selected!r}: choose one of {', '.join(KINDS)}")
+    return {
+        "selected": selected,
+        "conf_level": float(level),
+        "n_used": int(n),
+        "max_leverage": float(sums.max_leverage),
+        "clusters": info,
+        "estimators": estimators,
+        "notes": notes,
+    }
+
+
+def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], selected: str | None) -> dict[str, Any]:
+    """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors."""
+    from tallfit.solve.exact import reduce_factor
+
+    names = model.spec.term_names
+    cols = [names.index(t) for t in model.terms]
+    p = len(cols)
+    R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
+    beta = np.asarray(model.inference.estimate, dtype=float)
+    out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.asarray(out["estimators"][out["selected"]]["std_error"]) / model.inference.std_error
+    out["terms"] = list(model.terms)
+    out["max_ratio_to_plain"] = float(np.nanmax(ratio)) if np.isfinite(ratio).any() else float("nan")
+    return out

@@ -1,0 +1,128 @@
+"""The HTML report renders: it parses, every embedded image decodes (PIL), nothing is fetched from
+the network, the image files are written, and bad input stops the command before any output.
+A headless Chromium check runs only where /usr/bin/chromium exists.
+"""
+
+from __future__ import annotations
+
+import base64
+import io
+import os
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import tallfit
+from tallfit.cli import main
+
+PIL = pytest.importorskip("PIL.Image")
+
+
+class _Collect(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.imgs: list[dict] = []
+        self.links: list[str] = []
+        self.headings: list[str] = []
+        self._in_h2 = False
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "img":
+            self.imgs.append(a)
+        for key in ("src", "href"):
+            if key in a and tag != "img":
+                self.links.append(a[key])
+        self._in_h2 = tag == "h2"
+
+    def handle_data(self, data):
+        if self._in_h2:
+            self.headings.append(data.strip())
+            self._in_h2 = False
+
+
+@pytest.fixture(scope="module")
+def fleet(tmp_path_factory):
+    """Invented server telemetry: power draw against load and a quadratic inlet temperature."""
+    rng = np.random.default_rng(8)
+    n = 6000
+    host = rng.integers(0, 60, n)
+    load = rng.uniform(0, 1, n)
+    temp = rng.normal(24, 3, n)
+    power = 120 + 180 * load + 0.3 * (temp - 24) ** 2 + rng.normal(0, 2 + 6 * load, n) + rng.normal(0, 3, 60)[host]
+    folder = tmp_path_factory.mktemp("fleet")
+    path = folder / "fleet.parquet"
+    pq.write_table(pa.table({"host_id": [f"h{h:03d}" for h in host], "cpu_util": load,
+                             "inlet_temp_c": temp, "power_w": power}), path)
+    model = folder / "model.json"
+    assert main(["fit", str(path), "--target", "power_w", "--features", "cpu_util,inlet_temp_c",
+                 "--out", str(model), "--no-progress"]) == 0
+    return folder, path, model
+
+
+def test_report_renders_and_every_image_decodes(fleet, capsys):
+    folder, data, model = fleet
+    out = folder / "report.html"
+    rc = main(["report", str(model), str(data), "--out", str(out), "--cluster", "host_id",
+               "--keep", "host_id", "--no-progress"])
+    assert rc == 0
+    printed = capsys.readouterr().out
+    assert "inlet_temp_c: the straight line misses a bend" in printed
+    text = out.read_text(encoding="utf-8")
+    parser = _Collect()
+    parser.feed(text)
+    assert len(parser.imgs) == 6  # coefficients, robust vs plain, 2 binned, heat map, distribution
+    for img in parser.imgs:
+        src = img["src"]
+        assert src.startswith("data:image/png;base64,")
+        with PIL.open(io.BytesIO(base64.b64decode(src.split(",", 1)[1]))) as im:
+            im.verify()
+            assert im.size[0] > 200 and im.size[1] > 100
+        assert img.get("alt")
+    assert not [u for u in parser.links if u.startswith(("http:", "https:", "//"))]
+    for heading in ("Data", "Accuracy", "Estimates", "Is the straight line right?", "Read with care"):
+        assert heading in parser.headings
+    for caution in ("Association is not causation", "Extrapolation", "Dependent rows", "Multiple testing"):
+        assert caution in text
+    assert "cluster:host_id" in text and "h0" in text  # clustered errors and pass-through ids shown
+    files = sorted(p.name for p in (folder / "report_files").iterdir())
+    assert "coefficients.png" in files and "coefficients.svg" in files and len(files) == 12
+    with PIL.open(folder / "report_files" / "fitted_vs_residual.png") as im:
+        im.verify()
+    assert (folder / "report_files" / "residual_distribution.svg").read_text().lstrip().startswith("<?xml")
+
+
+@pytest.mark.skipif(not os.path.exists("/usr/bin/chromium"), reason="headless Chromium is not installed")
+def test_report_loads_in_headless_chromium(fleet, tmp_path):
+    folder, data, model = fleet
+    out = tmp_path / "r.html"
+    assert main(["report", str(model), str(data), "--out", str(out), "--no-progress", "--no-images"]) == 0
+    dom = subprocess.run(["/usr/bin/chromium", "--headless", "--disable-gpu", "--no-sandbox", "--dump-dom",
+                          out.as_uri()], capture_output=True, text=True, timeout=120).stdout
+    assert dom.count("<img") == 6 and "Read with care" in dom
+
+
+def test_report_bad_input_writes_nothing(fleet, tmp_path, capsys):
+    folder, data, model = fleet
+    out = tmp_path / "r.html"
+    assert main(["report", str(model), str(data), "--out", str(out), "--cluster", "rack_id", "--no-progress"]) == 2
+    assert "column 'rack_id' not found" in capsys.readouterr().err
+    assert main(["report", str(model), str(data), "--out", str(out), "--bins", "2", "--no-progress"]) == 2
+    assert "--bins 2" in capsys.readouterr().err
+    assert main(["report", str(tmp_path / "missing.json"), str(data), "--out", str(out)]) == 2
+    assert not out.exists() and not (tmp_path / "r_files").exists()
+    assert [p.name for p in tmp_path.iterdir()] == []
+
+
+def test_fit_cli_robust_option(fleet, capsys):
+    folder, data, _ = fleet
+    assert main(["fit", str(data), "--target", "power_w", "--features", "cpu_util,inlet_temp_c",
+                 "--robust", "hc3", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "HC3 errors beside the plain ones" in out
