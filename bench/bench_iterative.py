@@ -82,7 +82,8 @@ def main() -> None:
               f"median of {args.repeats}", flush=True)
         scans = {}
         for fmt in args.formats.split(","):
-            path = Path(tmp) / f"fleet.{fmt}"
+            (Path(tmp) / fmt).mkdir()
+            path = Path(tmp) / fmt / f"fleet.{fmt}"
             synthetic_gen.generate(path, args.rows, fmt=fmt, extra_features=EXTRA)
             exact = tallfit.fit(path, synthetic_gen.TARGET, features, batch_rows=args.batch_rows)
             problem, monitor, _ = prepare(exact.accumulator, exact.spec, standardize=True)

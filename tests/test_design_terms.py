@@ -252,3 +252,26 @@ def test_absorb_with_a_level_seen_late_and_a_categorical():
     np.testing.assert_allclose(model.inference.std_error, res.bse[:2], rtol=1e-9)
     with pytest.raises(DesignError, match="never saw"):
         tallfit.predict(model, pa.table({"x": [0.0], "host": ["h-new"], "cls": ["compute-a"]}))
+
+
+def test_where_skips_row_groups_and_partitions_without_changing_the_answer(tmp_path):
+    """Pushdown is an optimisation only: the fit equals the one on pre-filtered rows."""
+    import pyarrow.parquet as pq
+
+    from tallfit.inputs import as_source
+
+    rng = np.random.default_rng(9)
+    n = 4000
+    cpu = np.sort(rng.uniform(0, 1, n))  # sorted, so row groups have narrow cpu ranges
+    y = 50 + 100 * cpu + rng.normal(size=n)
+    for day in ("2026-11-01", "2026-11-02"):
+        d = tmp_path / f"day={day}"
+        d.mkdir()
+        pq.write_table(pa.table({"cpu": cpu, "y": y + (day == "2026-11-02")}), d / "part.parquet", row_group_size=500)
+    src = as_source(str(tmp_path))
+    model = tallfit.fit(src, "y", ["cpu"], where="cpu > 0.6 AND day = '2026-11-02'")
+    assert src.pruned_files == 1 and src.pruned_rows >= 2000
+    sel = cpu > 0.6
+    direct = tallfit.fit(pa.table({"cpu": cpu[sel], "y": y[sel] + 1}), "y", ["cpu"])
+    np.testing.assert_allclose(model.inference.estimate, direct.inference.estimate, rtol=1e-10)
+    assert model.inference.n_used == int(sel.sum())

@@ -126,3 +126,17 @@ def test_bad_plans_are_rejected_with_a_reason():
         FoldPlan(folds=1)
     with pytest.raises(DesignError, match="holdout fraction"):
         FoldPlan(holdout=1.5)
+
+
+def test_cv_with_a_categorical_term_equals_refits():
+    """Each fold is recoded with the training rows' coding; predictions do not depend on the reference."""
+    table, X, y, firm = _grunfeld()
+    rep = validate(table, "invest", ["value", "capital"], categorical=["firm"], folds=4, seed=8, holdout=0.2,
+                   batch_rows=17)
+    levels = np.unique(firm)
+    D = np.column_stack([X] + [(firm == f).astype(float) for f in levels[1:]])
+    hold, fold = FoldPlan(folds=4, holdout=0.2, seed=8).assign({}, np.arange(len(y)))
+    ref = _brute_cv(D[~hold], y[~hold], fold[~hold])  # numpy lstsq refits with indicator columns
+    np.testing.assert_allclose(rep.cv.fold_mse, ref, rtol=RTOL)
+    b = np.linalg.lstsq(D[~hold], y[~hold], rcond=None)[0]
+    np.testing.assert_allclose(rep.holdout.mse, np.mean((y[hold] - D[hold] @ b) ** 2), rtol=RTOL)

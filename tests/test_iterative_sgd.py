@@ -14,7 +14,14 @@ import pytest
 
 import tallfit
 from tallfit.errors import NumericalError
-from tallfit.kernels.sgd import CONSTANT, INVERSE, sgd_block, sgd_block_reference
+from tallfit.kernels.sgd import (
+    CONSTANT,
+    INVERSE,
+    gradient_products,
+    gradient_products_reference,
+    sgd_block,
+    sgd_block_reference,
+)
 from tallfit.solve.iterative.sgd import shuffled_order
 
 
@@ -40,6 +47,21 @@ def test_kernel_equals_numpy_reference_step_for_step(schedule, momentum, l2, ave
     for a, b in zip(*runs):
         np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
     assert runs[0][2][0] == 2 * 7  # ceil(53 / 8) steps per call
+
+
+@pytest.mark.parametrize("m,k", [(1, 1), (2047, 1), (5000, 2), (4099, 3)])
+def test_gradient_products_equal_numpy(m, k):
+    rng = np.random.default_rng(m)  # invented block; reference: numpy (BLAS) matrix products
+    A = np.asfortranarray(rng.normal(size=(m, 6)))
+    W = np.asfortranarray(rng.normal(size=(5, k)))
+    G, ss = np.zeros((5, k)), np.zeros(k)
+    G2, ss2 = np.ones((5, k)), np.ones(k)
+    G += 1.0
+    ss += 1.0
+    gradient_products(A[:, :5], A[:, 5], W, G, ss)
+    gradient_products_reference(A[:, :5], A[:, 5], W, G2, ss2)
+    np.testing.assert_allclose(G, G2, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(ss, ss2, rtol=1e-12)
 
 
 def test_shuffled_order_is_a_permutation():

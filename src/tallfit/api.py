@@ -19,6 +19,7 @@ from tallfit.design.coding import finalize_coding
 from tallfit.design.design import Design
 from tallfit.engine import local
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook
+from tallfit.engine.passes import apply_method_report
 from tallfit.modelfile import load_model, save_model
 from tallfit.results import FitResult
 from tallfit.solve.exact import DEFAULT_RANK_TOL
@@ -57,6 +58,8 @@ def fit(
     solver_options: dict[str, Any] | None = None,
     robust: str | None = None,
     cluster: str | Sequence[str] | None = None,
+    workers: int | None = None,
+    method: str = "qr",
 ) -> FitResult:
     """Fit ``target ~ features`` by exact least squares, streaming the data once.
 
@@ -109,6 +112,14 @@ def fit(
         ``"HC0"``…``"HC3"`` and/or one or two key columns (``"host_id"`` or ``"host_id,day"``):
         one more pass computes robust (clustered) standard errors, kept in ``result.robust`` and
         shown beside the plain ones (see ``tallfit.solve.robust``).
+    workers
+        Threads that read and fold in parallel (default: every core); results agree to rounding
+        whatever the number.
+    method
+        ``"qr"`` (default): the stable Householder factor. ``"gram"``: the faster co-moment path,
+        which loses about twice as many digits to ill-conditioning and warns when few are left;
+        ``"auto"``: the Gram path, replaced by a stable pass when its estimate says it is unsafe
+        (see ``tallfit.engine.passes``).
     """
     spec = make_spec(
         target, features, intercept=intercept, categorical=categorical, derive=derive,
@@ -136,7 +147,7 @@ def fit(
             )
         return _fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol,
                              conf_level, reference, min_level_count, max_levels)
-    raw = local.accumulate(source, spec, batch_rows, progress, design=design)
+    raw = local.accumulate(source, spec, batch_rows, progress, design=design, workers=workers, method=method)
     absorber = raw if spec.absorb else None
     acc = absorber.inner if absorber else raw
     acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels)
@@ -169,6 +180,7 @@ def fit(
         absorbed = {"column": spec.absorb, "levels": absorber.n_levels, "total_ss": absorber.total_ss()}
     result = fit_from_accumulator(spec, acc, absorbed=absorbed, **common)
     result.warnings.extend(notes)
+    apply_method_report(result, raw)
     if absorber is not None:
         _attach_effects(result, absorber, T, absorbed)
     passes = 2 if refine is True else int(refine)
@@ -370,6 +382,10 @@ def validate(
     reference: dict[str, str] | None = None,
     min_level_count: int | None = None,
     max_levels: int | None = None,
+    weights: str | None = None,
+    weight_kind: str = "analytic",
+    absorb: str | None = None,
+    by: Sequence[str] = (),
 ):
     """Fit on the training rows and measure prediction error on rows not fitted, in one pass.
 
@@ -385,8 +401,16 @@ def validate(
     """
     from tallfit.accumulate.folds import FoldPlan
     from tallfit.engine.split import absolute_error_pass, accumulate_split, finalize_split
+    from tallfit.errors import DesignError
     from tallfit.validation import build_validation, full_coef
 
+    unsupported = [name for name, v in (("weights", weights), ("absorb", absorb), ("by", by)) if v]
+    if unsupported:
+        raise DesignError(
+            f"validation does not take {', '.join(unsupported)} yet; validate the unweighted model "
+            "without absorbed keys or per-group models, or use fit for those"
+        )
+    del weight_kind
     spec = make_spec(
         target, features, intercept=intercept, categorical=categorical, derive=derive,
         interactions=interactions, polynomials=polynomials, where=where, missing=missing,

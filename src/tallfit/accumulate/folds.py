@@ -113,6 +113,8 @@ class FoldPlan:
     def __post_init__(self) -> None:
         if isinstance(self.folds, bool) or not isinstance(self.folds, int) or self.folds == 1 or self.folds < 0:
             raise DesignError(f"folds must be 0 (no cross-validation) or an integer of at least 2, got {self.folds!r}")
+        if self.folds > 10_000:
+            raise DesignError(f"{self.folds} folds is more than the 10000 supported; 5 to 20 folds is usual")
         if not 0.0 <= float(self.holdout) < 1.0:
             raise DesignError(f"the holdout fraction must be in [0, 1), got {self.holdout!r}; e.g. 0.2")
         if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
@@ -223,7 +225,7 @@ class FoldAccumulators:
         if fold_ids is None:
             self.folds[0].update_block(_part(block, A if train is None else _gather(A, train)))
             return
-        ids = fold_ids if train is None else fold_ids[train]
+        ids = (fold_ids if train is None else fold_ids[train]).astype(np.uint16)  # small ints: radix sort
         order = np.argsort(ids, kind="stable")
         S = _gather(A, order if train is None else train[order])
         bounds = np.searchsorted(ids[order], np.arange(len(self.folds) + 1))

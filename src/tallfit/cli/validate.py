@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from tallfit.cli.common import add_data_options, open_data, progress_for, split_list
+from tallfit.cli.common import add_data_options, add_design_options, design_kwargs, open_data, progress_for, split_list
 
 NAME = "validate"
 HELP = "measure prediction error on unseen rows: holdout, k-fold CV, ridge path, term selection"
@@ -49,6 +49,7 @@ def register(sub) -> None:
     v.add_argument("--features", required=True, type=split_list, help="comma-separated numeric columns")
     v.add_argument("--no-intercept", action="store_true", help="fit without a constant term")
     v.add_argument("--drop-aliased", action="store_true", help="fit without terms that are combinations of others")
+    add_design_options(v)
     v.add_argument("--folds", type=int, default=10, help="number of cross-validation folds (0 for none; default 10)")
     v.add_argument("--fold-key", metavar="COLUMN", help="keep all rows with one value of COLUMN in one fold (a host id)")
     v.add_argument("--holdout", type=float, default=0.0, metavar="FRACTION", help="set aside this fraction of rows (e.g. 0.2)")
@@ -93,7 +94,7 @@ def run(args) -> int:
             seed=args.seed, ridge=ridge, ridge_rule=args.ridge_rule, select=args.select,
             criterion=args.criterion, compare=args.test_terms, mae=args.mae,
             intercept=not args.no_intercept, drop_aliased=args.drop_aliased, batch_rows=args.batch_rows,
-            progress=prog,
+            progress=prog, **design_kwargs(args),
         )
     doc = encode_json(report.to_dict(), indent=2)
     if args.out_json:

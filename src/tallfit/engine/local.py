@@ -14,6 +14,7 @@ import pyarrow as pa
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.numeric import DesignBlock, design_block
 from tallfit.design.design import Design, check_design_columns
+from tallfit.design.pushdown import pruner
 from tallfit.design.spec import ModelSpec
 from tallfit.engine.prefetch import prefetched
 from tallfit.errors import ColumnNotFoundError, DataSourceError, TallfitError
@@ -66,9 +67,11 @@ def design_blocks(
             raise ColumnNotFoundError(col, source.schema.names, where=where)
     extra = [c for c in dict.fromkeys(extra_columns) if c not in spec.input_columns]
     read = spec.input_columns + extra
+    skip = pruner(spec.where) if not design.predicting else None
+    prune = {"prune": skip} if skip is not None else {}
 
     def produce() -> Iterator[DesignBlock]:
-        for chunk in source.batches(read, batch_rows):
+        for chunk in source.batches(read, batch_rows, **prune):
             label = chunk_label(source, chunk)
             try:
                 if pool is not None and design.plain and not extra_columns:
@@ -122,10 +125,21 @@ def accumulate(
         blocks = design_blocks(source, spec, batch_rows, progress, extra_columns=[spec.absorb], design=design)
         for block in blocks:
             absorbed.update_block(block, block.extra[spec.absorb], chunk_label_of(source, block))
+        count_pruned(source, absorbed.inner)
         return absorbed
     from tallfit.engine.passes import factor_pass
 
-    return factor_pass(source, spec, batch_rows, progress, design, workers=workers, method=method)
+    acc = factor_pass(source, spec, batch_rows, progress, design, workers=workers, method=method)
+    count_pruned(source, acc)
+    return acc
+
+
+def count_pruned(source, acc) -> None:
+    """Rows of Parquet row groups skipped by the --where statistics count as read and filtered."""
+    pruned = int(getattr(source, "pruned_rows", 0) or 0)
+    if pruned:
+        acc.n_read += pruned
+        acc.dropped_by_column["(where filter)"] = acc.dropped_by_column.get("(where filter)", 0) + pruned
 
 
 def residual_products_pass(

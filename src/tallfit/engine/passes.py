@@ -121,25 +121,29 @@ def factor_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Desi
                   lambda acc, b: acc.update_block(b, owned=True))
     acc = g.to_factor()
     report = MethodReport(method, "gram", gram=g)
-    if method == "auto" and acc.n_used > 0 and not _safe(g, acc):
+    safe, aliased = _verdict(g, acc) if acc.n_used > 0 else (True, False)
+    if not safe and (method == "auto" or aliased):
+        why = ("its estimate says it would keep fewer than "
+               f"{SAFE_DIGITS:.0f} digits here (ill-conditioned design)") if not aliased else (
+               "its factor is too inaccurate here to tell whether terms are aliased")
         try:
             acc = qr_pass()
         except DataSourceError as exc:
             report.notes.append(f"the Gram result looks unsafe but the data could not be read again ({exc})")
         else:
             report = MethodReport(method, "qr", gram=g, notes=[
-                "method 'auto': the Gram fast path would keep fewer than "
-                f"{SAFE_DIGITS:.0f} digits here (ill-conditioned design), so a second, stable pass "
-                "(Householder factor) was made"])
+                f"method {method!r}: the Gram fast path was not used because {why}; a second, "
+                "stable pass (Householder factor) was made"])
     acc.method_report = report
     return acc
 
 
-def _safe(g: GramAccumulator, acc: FactorAccumulator) -> bool:
+def _verdict(g: GramAccumulator, acc: FactorAccumulator) -> tuple[bool, bool]:
+    """(safe, aliases found) for a Gram pass: unsafe when few digits are left or a term looks aliased."""
     from tallfit.solve.exact import find_aliases
 
-    keep, _ = find_aliases(acc.R, acc.names)
-    return g.is_safe(keep)
+    keep, aliases = find_aliases(acc.R, acc.names)
+    return (g.is_safe(keep) and not aliases), bool(aliases)
 
 
 def apply_method_report(result, acc) -> None:

@@ -70,11 +70,11 @@ def finalize_split(accs: FoldAccumulators, spec: ModelSpec, reference=None, min_
         coded = parts
         coding = None
     else:
-        _, coding = finalize_coding(train, spec, reference, min_count, max_levels)
+        _, coding, _ = finalize_coding(train, spec, reference, min_count, max_levels)
         coded = []
         for a in parts:  # the training counts fix the plan; each factor keeps its own counts
             own = a.level_counts
-            recoded, _ = finalize_coding(replace(a, level_counts=train.level_counts), spec, reference,
+            recoded, _, _ = finalize_coding(replace(a, level_counts=train.level_counts), spec, reference,
                                          min_count, max_levels)
             coded.append(replace(recoded, level_counts=own))
     k = len(accs.folds)

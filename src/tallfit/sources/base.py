@@ -205,17 +205,33 @@ class Source:
         return self.files[0].path if len(self.files) == 1 else f"the data set ({self.describe()})"
 
     # ---- streaming
-    def batches(self, columns: list[str], batch_rows: int = 65536) -> Iterator[Chunk]:
-        """Stream every file in order as Chunks of at most batch_rows rows holding only `columns`."""
+    def batches(self, columns: list[str], batch_rows: int = 65536, prune=None) -> Iterator[Chunk]:
+        """Stream every file in order as Chunks of at most batch_rows rows holding only `columns`.
+
+        ``prune`` (see tallfit.design.pushdown) is a test on {column: (min, max)}: files whose
+        hive partition values, and Parquet row groups whose statistics, fail it are skipped
+        unread; ``pruned_rows`` then counts the rows skipped (Parquet) in this stream.
+        """
         batch_rows = check_batch_rows(batch_rows)
         columns = list(columns)
         schema = self.schema
         for c in columns:
             if c not in schema.names:
                 raise ColumnNotFoundError(c, schema.names, where=self._where())
-        return self._stream(columns, batch_rows, schema)
+        self.pruned_rows = 0
+        self.pruned_files = 0
+        return self._stream(columns, batch_rows, schema, prune)
 
-    def _stream(self, columns: list[str], batch_rows: int, schema: pa.Schema) -> Iterator[Chunk]:
+    def _partition_ranges(self, loc: Located) -> dict:
+        out = {}
+        for k, raw in loc.info.partition.items():
+            v = part_value(raw)
+            if v is not None and pa.types.is_integer(self._part_types.get(k, pa.string())):
+                v = int(v)
+            out[k] = (v, v)
+        return out
+
+    def _stream(self, columns: list[str], batch_rows: int, schema: pa.Schema, prune=None) -> Iterator[Chunk]:
         out_schema = pa.schema([schema.field(c) for c in columns])
         file_cols = [c for c in dict.fromkeys(columns) if c not in self._part_types]
         types = {c: schema.field(c).type for c in schema.names}
@@ -229,7 +245,15 @@ class Source:
             read_cols = file_cols or [have[0] if have else next(iter(types))]
             check = None if i in self._checked else (lambda s, i=i: self._check_file(i, s))
             row = 0
-            for rb in self._reader.read(loc, read_cols, types, batch_rows, check):
+            if prune is not None and loc.info.partition and not prune(self._partition_ranges(loc)):
+                self.pruned_files += 1
+                continue
+            extra = {"prune": prune} if prune is not None and self.format == "parquet" else {}
+            for rb in self._reader.read(loc, read_cols, types, batch_rows, check, **extra):
+                if isinstance(rb, int):  # a row group skipped by its statistics
+                    row += rb
+                    self.pruned_rows += rb
+                    continue
                 for piece in slices(rb, batch_rows):
                     yield Chunk(self._assemble(piece, columns, out_schema, loc, row), i, row)
                     row += piece.num_rows

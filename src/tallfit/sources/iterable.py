@@ -147,7 +147,7 @@ class IterableSource:
         return self._schema
 
     # ---- streaming
-    def batches(self, columns: list[str], batch_rows: int = 65536) -> Iterator[Chunk]:
+    def batches(self, columns: list[str], batch_rows: int = 65536, prune=None) -> Iterator[Chunk]:
         """Stream the batches re-sliced to at most batch_rows rows, holding only `columns`."""
         batch_rows = check_batch_rows(batch_rows)
         columns = list(columns)

@@ -47,23 +47,45 @@ class ParquetReader:
                 raise DataSourceError(f"{loc.path}: unreadable Parquet schema ({exc})") from None
 
     def read(self, loc: Located, columns: list[str], types: dict[str, pa.DataType], batch_rows: int,
-             check: Callable[[pa.Schema], None] | None) -> Iterator[pa.RecordBatch]:
+             check: Callable[[pa.Schema], None] | None, prune=None) -> Iterator[pa.RecordBatch | int]:
+        """Batches of the file; with `prune`, row groups whose statistics rule out every row are
+        skipped and their row count is yielded as an int instead (so row offsets stay right)."""
         f, pf = self._open(loc)
         with f:
-            total = pf.metadata.num_rows
+            meta = pf.metadata
+            total = meta.num_rows
             row = 0
-            batches = pf.iter_batches(batch_size=batch_rows, columns=columns, use_threads=True)
-            while True:
-                try:
-                    rb = next(batches)
-                except StopIteration:
-                    break
-                except _BAD_STATUS as exc:
-                    raise DataSourceError(
-                        f"{loc.path}: corrupt Parquet data after row {row:,} of {total:,} (while reading rows "
-                        f"{row:,}-{min(total, row + batch_rows) - 1:,}): {exc}") from None
-                yield rb
-                row += rb.num_rows
+            groups = list(range(meta.num_row_groups))
+            for g in groups:
+                if prune is not None and not prune(_row_group_ranges(meta, g)):
+                    n = meta.row_group(g).num_rows
+                    row += n
+                    yield n
+                    continue
+                batches = pf.iter_batches(batch_size=batch_rows, row_groups=[g], columns=columns, use_threads=True)
+                while True:
+                    try:
+                        rb = next(batches)
+                    except StopIteration:
+                        break
+                    except _BAD_STATUS as exc:
+                        raise DataSourceError(
+                            f"{loc.path}: corrupt Parquet data after row {row:,} of {total:,} (while reading rows "
+                            f"{row:,}-{min(total, row + batch_rows) - 1:,}): {exc}") from None
+                    yield rb
+                    row += rb.num_rows
             if row != total:
                 raise DataSourceError(f"{loc.path}: the footer promises {total:,} rows but {row:,} were read; "
                                       f"the file is corrupt")
+
+
+def _row_group_ranges(meta, g: int) -> dict:
+    """{column: (min, max)} from a row group's statistics, where the file recorded them."""
+    rg = meta.row_group(g)
+    out = {}
+    for j in range(rg.num_columns):
+        col = rg.column(j)
+        st = col.statistics
+        if st is not None and st.has_min_max:
+            out[col.path_in_schema] = (st.min, st.max)
+    return out

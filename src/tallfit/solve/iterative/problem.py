@@ -20,6 +20,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from tallfit.kernels.sgd import gradient_products
+
 BlockPass = Callable[[], Iterable[np.ndarray]]  # one pass: blocks A = [X_all | y] (Fortran float64)
 
 
@@ -107,10 +109,7 @@ class Problem:
         ss = np.zeros(1 + k)
         for A in blocks:
             X, y = self.design(A)
-            E = np.dot(X, W)
-            E[:, 0] -= y
-            G += np.dot(X.T, E)
-            ss += np.einsum("ij,ij->j", E, E)
+            gradient_products(X, y, W, G, ss)
         return PassProducts(grad=G[:, 0], sse=float(ss[0]), hv=G[:, 1:], v_norms=ss[1:])
 
 
