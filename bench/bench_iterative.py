@@ -5,6 +5,7 @@ zstd Parquet and as CSV in a temporary directory, fits it exactly once (the fact
 run starts from), then times, median of --repeats runs each:
 
   scan      a bare scan of the 21 model columns through Source.batches (the floor)
+  design    the same pass through design_blocks with no solver work (what every pass pays)
   sgd       one SGD epoch (standardised rows, window shuffle, averaging), the solver's own code
   gd/lbfgs  one pass of loss and gradient (Problem.products at a point)
   cg        one CG pass (gradient and one Gram-vector product)
@@ -61,7 +62,12 @@ def pass_kinds(problem, monitor, passes: DesignPasses) -> dict:
         history = History(monitor, time.perf_counter())
         sgd.run(problem, passes.blocks, history, epochs=1)
 
+    def design_only():
+        for _ in passes.blocks():
+            pass
+
     return {
+        "design only": design_only,
         "sgd epoch": sgd_epoch,
         "gd/lbfgs pass": lambda: problem.products(passes.blocks(), x),
         "cg pass": lambda: problem.products(passes.blocks(), x, V),

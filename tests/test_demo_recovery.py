@@ -6,7 +6,6 @@ synthetic_gen with known coefficients (its own truth record)."""
 
 from __future__ import annotations
 
-import numpy as np
 from scipy import stats
 
 import synthetic_gen

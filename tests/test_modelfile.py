@@ -79,3 +79,14 @@ def test_save_is_atomic_and_keeps_old_file_on_failure(model, tmp_path, monkeypat
         tallfit.save(model, path)
     assert path.read_text() == "old content"
     assert [p.name for p in tmp_path.iterdir()] == ["m.json"]
+
+
+def test_saved_file_has_the_usual_permissions(model, tmp_path):
+    import os
+    import stat
+
+    path = tmp_path / "m.json"
+    tallfit.save(model, path)
+    mask = os.umask(0)
+    os.umask(mask)
+    assert stat.S_IMODE(path.stat().st_mode) == 0o666 & ~mask

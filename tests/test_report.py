@@ -8,17 +8,14 @@ from __future__ import annotations
 import base64
 import io
 import os
-import shutil
 import subprocess
 from html.parser import HTMLParser
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
-import tallfit
 from tallfit.cli import main
 
 PIL = pytest.importorskip("PIL.Image")
@@ -100,12 +97,23 @@ def test_report_renders_and_every_image_decodes(fleet, capsys):
 
 @pytest.mark.skipif(not os.path.exists("/usr/bin/chromium"), reason="headless Chromium is not installed")
 def test_report_loads_in_headless_chromium(fleet, tmp_path):
+    """Every image decodes in a real browser: a probe script appended to a copy of the page marks
+    the DOM with the images that loaded (complete, naturalWidth > 0) once the page has settled."""
     folder, data, model = fleet
     out = tmp_path / "r.html"
     assert main(["report", str(model), str(data), "--out", str(out), "--no-progress", "--no-images"]) == 0
-    dom = subprocess.run(["/usr/bin/chromium", "--headless", "--disable-gpu", "--no-sandbox", "--dump-dom",
-                          out.as_uri()], capture_output=True, text=True, timeout=120).stdout
-    assert dom.count("<img") == 6 and "Read with care" in dom
+    probe = tmp_path / "probe.html"
+    probe.write_text(out.read_text(encoding="utf-8") + (
+        "<script>window.addEventListener('load', () => { const im = [...document.images];"
+        " document.body.setAttribute('data-probe', im.filter(i => i.complete && i.naturalWidth > 0).length"
+        " + '/' + im.length); });</script>"), encoding="utf-8")
+    dom = subprocess.run(["/usr/bin/chromium", "--headless", "--disable-gpu", "--no-sandbox",
+                          "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                          "--no-first-run", f"--user-data-dir={tmp_path / 'profile'}",
+                          "--virtual-time-budget=5000", "--dump-dom", probe.as_uri()],
+                         capture_output=True, text=True, timeout=120).stdout
+    assert 'data-probe="6/6"' in dom, dom[-500:]
+    assert "Read with care" in dom
 
 
 def test_report_bad_input_writes_nothing(fleet, tmp_path, capsys):

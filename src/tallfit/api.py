@@ -200,8 +200,9 @@ def _with_robust(result: FitResult, source, robust, cluster, batch_rows, progres
     if not robust and not cluster:
         return result
     from tallfit.engine.second_pass import second_pass
-    from tallfit.solve.robust import robust_for_model
+    from tallfit.solve.robust import check_kind, robust_for_model
 
+    check_kind(robust)
     sp = second_pass(result, source, cluster=_cluster_list(cluster), diagnostics=False,
                      batch_rows=batch_rows, progress=progress)
     result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust)
@@ -228,8 +229,9 @@ def diagnose(
     """
     from tallfit.diagnostics.assemble import build_diagnostics, same_data
     from tallfit.engine.second_pass import second_pass
-    from tallfit.solve.robust import robust_for_model
+    from tallfit.solve.robust import check_kind, robust_for_model
 
+    check_kind(robust)
     from tallfit.grouped import GroupedFit
 
     if not isinstance(model, (FitResult, GroupedFit)):
@@ -436,7 +438,7 @@ def validate(
         models = [full_coef(report.fit)]
         if report.ridge is not None and report.ridge.chosen_fit is not None:
             models.append(report.ridge.chosen_fit.inference.estimate)
-        sae, _ = absolute_error_pass(source, spec, plan, np.column_stack(models), batch_rows, progress)
+        sae, _ = absolute_error_pass(source, spec, plan, np.column_stack(models), batch_rows, progress, coding)
         report.holdout.sae = float(sae[0])
         if len(models) > 1:
             report.ridge.holdout_mae = float(sae[1] / report.holdout.n)

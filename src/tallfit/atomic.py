@@ -30,6 +30,12 @@ def check_writable(path: str | os.PathLike, overwrite: bool = True) -> Path:
     return target
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike, overwrite: bool = True) -> Iterator[Path]:
     """Yield a temporary path in the target's directory; on success rename it to `path`."""
@@ -39,6 +45,7 @@ def atomic_path(path: str | os.PathLike, overwrite: bool = True) -> Iterator[Pat
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        os.chmod(tmp_path, 0o666 & ~_umask())  # mkstemp makes 0600; give the usual permissions
         os.replace(tmp_path, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):

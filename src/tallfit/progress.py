@@ -22,6 +22,14 @@ def _parquet_rows(source) -> int | None:
         return None
 
 
+def _human(n: float) -> str:
+    for unit in ("B", "kB", "MB", "GB", "TB"):
+        if n < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n:.1f} TB"
+
+
 class ScanProgress:
     """Counts rows per pass; shows rows, files done, rate, and time left when the total is known."""
 
@@ -68,17 +76,18 @@ class ScanProgress:
             TaskProgressColumn(),
             TextColumn("{task.completed:,.0f} rows"),
             TextColumn("{task.fields[rate]}"),
-            TextColumn("files {task.fields[files]}"),
+            TextColumn("files {task.fields[files]} ({task.fields[bytes]})"),
             TimeElapsedColumn(),
             TimeRemainingColumn(),
             console=Console(file=self.stream),
             transient=True,
+            redirect_stdout=False,  # results go to stdout untouched; the bar lives on stderr
+            redirect_stderr=False,
         )
         self._task = self._progress.add_task(
-            self.label, total=self.total_rows, rate="", files=f"0/{len(self.sizes)}", bytes_done=0
+            self.label, total=self.total_rows, rate="", files=f"0/{len(self.sizes)}", bytes=""
         )
         self._progress.start()
-        self._total_bytes = total_bytes
         return self
 
     def new_pass(self, label: str) -> None:
@@ -96,6 +105,7 @@ class ScanProgress:
             self._task,
             rate=f"{self.rows / elapsed / 1e6:.2f} M rows/s",
             files=f"{min(self.file_index + 1, len(self.sizes))}/{len(self.sizes)}",
+            bytes=f"{_human(sum(self.sizes[: max(self.file_index, 0)]))} of {_human(sum(self.sizes))} done",
         )
 
     def __exit__(self, *exc) -> None:

@@ -79,6 +79,11 @@ class _Scorer:
         self.first = 1 if spec.has_intercept_column else 0
         self.absorbed = (model.coding or {}).get("absorbed")
         self.unseen = unseen
+        if intervals and not np.all(np.isfinite(model.inference.std_error)):
+            raise DesignError(
+                f"intervals need standard errors, which this model ({model.solver}) does not have; "
+                "predict without intervals, or use an exact least-squares model"
+            )
         if self.absorbed and intervals:
             raise DesignError(
                 "intervals are not available for a model with an absorbed key (the level effects' "

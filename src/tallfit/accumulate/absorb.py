@@ -17,6 +17,7 @@ import numpy as np
 
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.categorical import LevelCoder
+from tallfit.kernels.groups import centre_rows, group_means, merge_means
 from tallfit.kernels.tsqr import fold_rows
 
 
@@ -27,8 +28,8 @@ class AbsorbAccumulator:
         self.column = column
         self.inner = FactorAccumulator.create(names)
         self.coder = LevelCoder(column)
-        self.counts = np.zeros(0, dtype=np.int64)
-        self.means = np.zeros((0, len(names)))
+        self.counts = np.zeros(0)
+        self.means = np.zeros((0, len(names)), order="F")  # levels × columns, column-major
 
     @property
     def n_levels(self) -> int:
@@ -38,11 +39,11 @@ class AbsorbAccumulator:
         G = self.coder.n_columns
         if self.means.shape[1] < k:  # design columns added while streaming (zero so far)
             pad = np.zeros((self.means.shape[0], k - self.means.shape[1]))
-            self.means = np.hstack([self.means[:, :-1], pad, self.means[:, -1:]])
-        if G > self.counts.size:
-            extra = G - self.counts.size
-            self.counts = np.concatenate([self.counts, np.zeros(extra, dtype=np.int64)])
-            self.means = np.vstack([self.means, np.zeros((extra, self.means.shape[1]))])
+            self.means = np.asfortranarray(np.hstack([self.means[:, :-1], pad, self.means[:, -1:]]))
+        if G > self.counts.size:  # grow by half again at least, so copies stay amortised O(G)
+            extra = max(G - self.counts.size, self.counts.size // 2)
+            self.counts = np.concatenate([self.counts, np.zeros(extra)])
+            self.means = np.asfortranarray(np.vstack([self.means, np.zeros((extra, self.means.shape[1]))]))
 
     def update_block(self, block, key_values, label: str) -> None:
         names = getattr(block, "names", None)
@@ -54,23 +55,16 @@ class AbsorbAccumulator:
         self._grow(k)
         if A.shape[0]:
             present, inv = np.unique(codes, return_inverse=True)
-            nb = np.bincount(inv, minlength=present.size).astype(np.float64)
-            mb = np.empty((present.size, k))
-            for j in range(k):
-                mb[:, j] = np.bincount(inv, weights=A[:, j], minlength=present.size)
-            mb /= nb[:, None]
-            centred = A - mb[inv]
-            R = fold_rows(self.inner.R, np.asfortranarray(centred))
+            nb, mb = group_means(A, inv.astype(np.int64), present.size)
+            R = fold_rows(self.inner.R, centre_rows(A, mb, inv))  # rows centred on their batch means
             na = self.counts[present].astype(np.float64)
             seen = na > 0
-            if seen.any():
+            if seen.any():  # the Chan–Golub–LeVeque correction row of each level seen before
                 scale = np.sqrt(na[seen] * nb[seen] / (na[seen] + nb[seen]))
                 shift = (mb[seen] - self.means[present[seen]]) * scale[:, None]
                 R = fold_rows(R, np.asfortranarray(shift))
             self.inner.R = R
-            tot = na + nb
-            self.means[present] += (mb - self.means[present]) * (nb / tot)[:, None]
-            self.counts[present] += nb.astype(np.int64)
+            merge_means(self.means, self.counts, present.astype(np.int64), mb, nb)
         # counts, ranges and drops as for any factor (the rows themselves were folded above)
         self.inner.update(np.zeros((0, k)), n_read=block.n_read, dropped=block.dropped_by_column)
         self.inner.n_used += A.shape[0]

@@ -10,6 +10,18 @@ NAME = "fit"
 HELP = "fit a model on a data set and save it"
 
 
+def _positive_int(text: str) -> int:
+    import argparse
+
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a whole number: {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1: {text!r}")
+    return value
+
+
 def register(sub) -> None:
     f = sub.add_parser(NAME, help=HELP, description="Fit TARGET on FEATURES by exact least squares, one pass over the data.")
     add_data_options(f)
@@ -29,6 +41,8 @@ def register(sub) -> None:
     f.add_argument("--solver-options", type=_solver_options, default={}, metavar="K=V,...", help="options of the iterative solver, e.g. epochs=5,learning_rate=0.1,momentum=0.9 (see tallfit compare)")
     f.add_argument("--cache", action="store_true", help="with an iterative solver: keep the decoded design in a local memory-mapped file for re-passes")
     f.add_argument("--spill-dir", default=None, help="directory for that cache (default: the system temporary directory)")
+    f.add_argument("--workers", type=_positive_int, default=None, metavar="N", help="threads reading and folding in parallel (default: all cores)")
+    f.add_argument("--method", choices=["qr", "gram", "auto"], default="qr", help="qr: stable Householder factor (default); gram: faster co-moments, fewer digits on ill-conditioned data (warns); auto: gram, with a stable pass when it would be unsafe")
 
 
 def _solver_options(text: str) -> dict:
@@ -98,6 +112,8 @@ def run(args) -> int:
             robust=args.robust,
             cluster=args.cluster,
             **_solver_kwargs(args),
+            workers=args.workers,
+            method=args.method,
         )
     if args.out:
         result.save(args.out)

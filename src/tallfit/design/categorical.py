@@ -60,6 +60,8 @@ class LevelCoder:
         self.unseen = unseen
         self.unseen_rows = 0
         self.unseen_levels: dict[str, int] = {}
+        self._value_set: pa.Array | None = None
+        self._value_cols: np.ndarray | None = None
 
     @property
     def names(self) -> list[str]:
@@ -72,19 +74,33 @@ class LevelCoder:
         enc = pc.dictionary_encode(strings)
         if isinstance(enc, pa.ChunkedArray):
             enc = enc.combine_chunks()
-        dictionary = enc.dictionary.to_pylist()
-        local = np.empty(len(dictionary) + 1, dtype=np.int64)
-        local[-1] = -2  # nulls index the last slot
-        for i, level in enumerate(dictionary):
-            local[i] = self._column_of(level, label)
+        local = np.append(self._known_columns(enc.dictionary, label), -2)  # nulls index the last slot
         idx = enc.indices.to_numpy(zero_copy_only=False)
-        idx = np.where(enc.indices.is_null().to_numpy(zero_copy_only=False), len(dictionary), idx)
+        idx = np.where(enc.indices.is_null().to_numpy(zero_copy_only=False), len(enc.dictionary), idx)
         codes = local[idx.astype(np.int64)]
         if (codes == -3).any():
             bad = codes == -3
             self.unseen_rows += int(bad.sum())
             codes = np.where(bad, self.other if (self.unseen == "other" and self.other is not None) else -1, codes)
         return codes
+
+    def _known_columns(self, dictionary: pa.Array, label: str) -> np.ndarray:
+        """Column of each entry of a batch's level dictionary: known levels by one hash lookup in
+        Arrow (no Python loop over a key of 10^5 levels), new ones one by one."""
+        out = np.full(len(dictionary), -4, dtype=np.int64)
+        if self.index and len(dictionary):
+            if self._value_set is None or len(self._value_set) != len(self.index):
+                self._value_set = pa.array(list(self.index), type=pa.string())
+                self._value_cols = np.fromiter(self.index.values(), dtype=np.int64, count=len(self.index))
+            pos = pc.index_in(dictionary, value_set=self._value_set)
+            found = pos.is_valid().to_numpy(zero_copy_only=False)
+            out[found] = self._value_cols[pos.drop_null().to_numpy().astype(np.int64)]
+        missing = np.flatnonzero(out == -4)
+        if missing.size:
+            levels = dictionary.take(pa.array(missing)).to_pylist()
+            for i, level in zip(missing, levels):
+                out[i] = self._column_of(level, label)
+        return out
 
     def _column_of(self, level: str, label: str) -> int:
         col = self.index.get(level)

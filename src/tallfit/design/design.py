@@ -147,7 +147,6 @@ class Design:
             if missing.any():
                 bad_rows(coder.column, missing)
             codes_all.append(codes)
-        sqrt_w = None
         w = None
         if spec.weights and not self.predicting:
             w = column_as_float(batch.column(spec.weights))

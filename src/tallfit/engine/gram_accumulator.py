@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from tallfit.accumulate.factor import FactorAccumulator
-from tallfit.kernels.gram import SAFE_DIGITS, CoMoments, comoment_digits, factor_from_comoments
+from tallfit.kernels.gram import SAFE_DIGITS, SHIFT_ROWS, CoMoments, comoment_digits, factor_from_comoments, shift_and_range
 
 
 @dataclass
@@ -43,9 +43,12 @@ class GramAccumulator:
         if A.shape[1] != len(self.names):
             raise ValueError(f"block has {A.shape[1]} columns, accumulator has {len(self.names)}")
         if A.shape[0]:
-            np.minimum(self.col_min, A.min(axis=0), out=self.col_min)
-            np.maximum(self.col_max, A.max(axis=0), out=self.col_max)
-            self.cm.update(A[:, 1:] if self.intercept else A, overwrite=owned)
+            first = 1 if self.intercept else 0
+            if self.cm.shift is None:
+                self.cm.shift = A[: min(A.shape[0], SHIFT_ROWS), first:].mean(axis=0)
+            D = A if (owned and A.flags.f_contiguous) else np.array(A, order="F")
+            shift_and_range(D, first, self.cm.shift, self.col_min, self.col_max)  # one pass, in place
+            self.cm.add_shifted(D, ones_first=self.intercept)
         self.n_read += block.n_read
         for name, count in block.dropped_by_column.items():
             self.dropped_by_column[name] = self.dropped_by_column.get(name, 0) + count

@@ -25,7 +25,7 @@ from tallfit.design.spec import ModelSpec
 from tallfit.engine.gram_accumulator import GramAccumulator
 from tallfit.engine.parallel import BufferPool, file_sources, fold_round_robin, offset_progress, run_tasks, tree_merge, worker_count
 from tallfit.errors import DataSourceError
-from tallfit.kernels.gram import SAFE_DIGITS
+from tallfit.kernels.gram import SAFE_DIGITS, shift_and_range
 
 METHODS = ("qr", "gram", "auto")
 #: Largest design block in bytes: wide designs read fewer rows per batch, so memory stays flat.
@@ -73,7 +73,7 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
         fold(acc, block)
         pool.give(block.A)
 
-    subs = file_sources(source) if (w > 1 and design.plain and not spec.absorb) else None
+    subs = file_sources(source) if (design.plain and not spec.absorb) else None
     if subs is not None:
         import threading
 
@@ -106,7 +106,7 @@ def factor_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Desi
 
     def qr_pass() -> FactorAccumulator:
         return fold_pass(source, spec, batch_rows, progress, design, workers,
-                         lambda: FactorAccumulator.create(names), lambda acc, b: acc.update_block(b))
+                         lambda: FactorAccumulator.create(names), _fold_factor)
 
     if method == "qr":
         return qr_pass()
@@ -136,6 +136,19 @@ def factor_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Desi
                 "stable pass (Householder factor) was made"])
     acc.method_report = report
     return acc
+
+
+_NO_SHIFT = np.zeros(0)
+
+
+def _fold_factor(acc: FactorAccumulator, block) -> None:
+    """Fold a block; its column ranges come from one fused pass when the design did not give them."""
+    A = block.A
+    if A.shape[0] and getattr(block, "col_min", None) is None and A.flags.f_contiguous:
+        lo, hi = np.full(A.shape[1], np.inf), np.full(A.shape[1], -np.inf)
+        shift_and_range(A, A.shape[1], _NO_SHIFT, lo, hi)
+        block.col_min, block.col_max = lo, hi
+    acc.update_block(block)
 
 
 def _verdict(g: GramAccumulator, acc: FactorAccumulator) -> tuple[bool, bool]:

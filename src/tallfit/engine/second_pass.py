@@ -25,11 +25,14 @@ from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
 from tallfit.diagnostics.kernels import grid_counts, grid_index
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
+from tallfit.kernels.lapack_calls import single_blas_thread
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
 from tallfit.errors import DesignError
 from tallfit.results import FitResult
 from tallfit.solve.exact import reduce_factor
 from tallfit.solve.robust import ClusterSums, SandwichSums
+
+
 
 SAMPLE_ROWS = 131_072
 HEAT_CELLS = 64  # fitted × residual histogram: 64 × 64 cells over the fitted grid and ±4 s
@@ -268,7 +271,8 @@ def second_pass(
     run = _Pass(model, source, cluster, keep, diagnostics, top_k)
     extra = list(dict.fromkeys(list(cluster) + list(keep)))
     blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding)
-    for block in blocks:
-        run.feed(block)
-    run.flush(whole=True)
+    with single_blas_thread():  # OpenBLAS threads beside the reader were 4-150x slower here
+        for block in blocks:
+            run.feed(block)
+        run.flush(whole=True)
     return run.out

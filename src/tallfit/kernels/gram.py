@@ -27,6 +27,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from scipy.linalg import LinAlgError, cho_factor, cho_solve, cholesky, qr
 
@@ -65,6 +66,21 @@ class CoMoments:
             D = np.asfortranarray(D)
         self.G += np.dot(D.T, D)  # np.dot (not @) releases the GIL and overlaps across threads
         self.sums += D.sum(axis=0)
+        self.n += m
+
+    def add_shifted(self, D: np.ndarray, ones_first: bool) -> None:
+        """Add rows already shifted by ``self.shift``; with ``ones_first`` D's column 0 is all ones,
+        so one product gives Σ(a − c) (row 0) beside Σ(a − c)(a − c)ᵀ, with no separate sum."""
+        m = D.shape[0]
+        if m == 0:
+            return
+        P = np.dot(D.T, D)
+        if ones_first:
+            self.G += P[1:, 1:]
+            self.sums += P[0, 1:]
+        else:
+            self.G += P
+            self.sums += D.sum(axis=0)
         self.n += m
 
     def mean(self) -> np.ndarray:
@@ -180,3 +196,28 @@ def comoment_digits(cm: CoMoments, keep: list[int], intercept: bool, trials: int
     if intercept and 0 not in keep:
         digits = digits[1:]
     return digits
+
+
+@numba.njit(cache=True, nogil=True, fastmath=True)
+def shift_and_range(A, first, shift, lo, hi):  # pragma: no cover - compiled
+    """One pass per column: lo/hi ← running min/max of every column; columns from `first` on get
+    `shift` subtracted in place. A holds finite values only (the design dropped the others), so
+    fast-math min/max are exact."""
+    m, k = A.shape
+    for j in range(k):
+        a = lo[j]
+        b = hi[j]
+        if j >= first:
+            s = shift[j - first]
+            for i in range(m):
+                v = A[i, j]
+                a = min(a, v)
+                b = max(b, v)
+                A[i, j] = v - s
+        else:
+            for i in range(m):
+                v = A[i, j]
+                a = min(a, v)
+                b = max(b, v)
+        lo[j] = a
+        hi[j] = b

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from tallfit.render.numbers import count, sig
+from tallfit.render.numbers import count, sig, table
 
 MAX_TERMS_SHOWN = 6
 
@@ -28,11 +28,7 @@ def render_groups(grouped) -> str:
         for t in terms:
             cells.append(f"{sig(coef[t][0], 5)} ({sig(coef[t][1], 2)})" if t in coef else "—")
         rows.append(cells)
-    widths = [max(len(r[c]) for r in rows) for c in range(len(header))]
-    for i, r in enumerate(rows):
-        out.append("  " + "  ".join([r[0].ljust(widths[0])] + [r[j].rjust(widths[j]) for j in range(1, len(r))]))
-        if i == 0:
-            out.append("  " + "  ".join("·" * w for w in widths))
+    out.extend(table(rows))
     if grouped.failed:
         out.append("")
         out.append(f"not fitted ({len(grouped.failed)} groups)")

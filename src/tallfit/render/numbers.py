@@ -26,3 +26,14 @@ def pval(p: float) -> str:
 
 def count(n: int) -> str:
     return f"{n:,}"
+
+
+def table(rows: list[tuple[str, ...]] | list[list[str]]) -> list[str]:
+    """Text table: first column left-aligned, the rest right-aligned, a dotted rule under the header."""
+    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
+    out = []
+    for r in rows:
+        cells = [r[0].ljust(widths[0])] + [r[c].rjust(widths[c]) for c in range(1, len(r))]
+        out.append("  " + "  ".join(cells))
+    out.insert(1, "  " + "  ".join("·" * w for w in widths))
+    return out

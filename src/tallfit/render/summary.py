@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from tallfit.render.numbers import count, pval, sig
+from tallfit.render.numbers import count, pval, sig, table
 from tallfit.results import FitResult
 
 RULE = "─" * 78
@@ -24,13 +24,7 @@ def _effects(result: FitResult) -> list[str]:
                 f"{result.digits[i]:.0f}",
             )
         )
-    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
-    out = []
-    for r in rows:
-        cells = [r[0].ljust(widths[0])] + [r[c].rjust(widths[c]) for c in range(1, len(r))]
-        out.append("  " + "  ".join(cells))
-    out.insert(1, "  " + "  ".join("·" * w for w in widths))
-    return out
+    return table(rows)
 
 
 def _robust_lines(result: FitResult) -> list[str]:

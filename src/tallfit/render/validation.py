@@ -6,20 +6,10 @@ import os
 
 import numpy as np
 
-from tallfit.render.numbers import count, pval, sig
+from tallfit.render.numbers import count, pval, sig, table as _table
 from tallfit.render.summary import RULE
 
 PLOT_FORMATS = ("png", "svg")
-
-
-def _table(rows: list[tuple[str, ...]]) -> list[str]:
-    widths = [max(len(r[c]) for r in rows) for c in range(len(rows[0]))]
-    out = []
-    for r in rows:
-        cells = [r[0].ljust(widths[0])] + [r[c].rjust(widths[c]) for c in range(1, len(r))]
-        out.append("  " + "  ".join(cells))
-    out.insert(1, "  " + "  ".join("·" * w for w in widths))
-    return out
 
 
 def _split_line(report) -> str:

@@ -45,8 +45,10 @@ class Alias:
     def describe(self) -> str:
         if not self.depends_on:
             return f"{self.term} is zero in every used row"
-        parts = " + ".join(f"{c:.6g}·{name}" for name, c in self.depends_on)
-        return f"{self.term} ≈ {parts}"
+        shown = sorted(self.depends_on, key=lambda d: -abs(d[1]))[:6]
+        parts = " + ".join(f"{c:.6g}·{name}" for name, c in shown)
+        more = len(self.depends_on) - len(shown)
+        return f"{self.term} ≈ {parts}" + (f" + {more} more terms" if more > 0 else "")
 
 
 @dataclass

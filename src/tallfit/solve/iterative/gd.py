@@ -3,7 +3,8 @@
 Step 1/L with L = λ_max(ZᵀZ/n), the largest eigenvalue of the Gram matrix of the (standardised)
 design, known exactly from the factor the first pass gathers. With a step η ≤ 1/L every step
 decreases f, and the error contracts in every eigendirection by |1 − ηλ_i| ≤ 1 − ημ, μ the
-smallest eigenvalue (Nesterov, Introductory Lectures on Convex Optimization, 2004, §2.1.5);
+smallest eigenvalue (Nocedal & Wright, Numerical Optimization, 2nd ed., §3.3, steepest descent
+on a quadratic);
 ``step_scale`` multiplies 1/L (above 2 the iteration diverges, which is detected).
 """
 

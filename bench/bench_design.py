@@ -1,0 +1,131 @@
+"""Cost of categorical terms and an absorbed key, against the numeric-only fit of the same file.
+
+Writes fleet telemetry (synthetic_gen, 100,000 hosts) with two extra label columns that vary
+within a host, ``zone`` (8 levels) and ``pod`` (50 levels), as one zstd Parquet file. Then,
+each in its own process (so peak RSS is that run's own), median of --repeats runs:
+
+  scan         bare pyarrow scan of the numeric model columns into float64 buffers (the floor)
+  numeric      fit of power_w on the six telemetry features
+  categorical  + zone and pod as indicator columns (levels found while streaming)
+  absorb       numeric features, host_id (100,000 levels) absorbed as fixed effects
+  both         categorical and absorbed together
+
+and prints time ratios to the numeric fit (target: categorical + absorbed ≤ 1.5×) and peak RSS.
+
+    PYTHONPATH=src:. python bench/bench_design.py --rows 10000000
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import statistics
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+HERE = Path(__file__).resolve().parent
+FEATURES = ["cpu_util", "mem_bw_gbps", "disk_iops", "net_gbps", "inlet_temp_c", "fan_rpm"]
+MODES = ["scan", "numeric", "categorical", "absorb", "both"]
+
+
+def write_data(path: Path, rows: int, hosts: int) -> None:
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    import synthetic_gen
+
+    chunk = 1_000_000
+    writer = None
+    tmp = path.with_suffix(".part")
+    try:
+        for start in range(0, rows, chunk):
+            t = synthetic_gen.generate_table(min(chunk, rows - start), seed=4, start_row=start, hosts=hosts)
+            rng = np.random.default_rng(start)  # labels that vary within a host, as a job class would
+            t = t.append_column("zone", pa.array([f"z{v}" for v in range(8)]).take(pa.array(rng.integers(0, 8, t.num_rows))))
+            t = t.append_column("pod", pa.array([f"p{v:02d}" for v in range(50)]).take(pa.array(rng.integers(0, 50, t.num_rows))))
+            if writer is None:
+                writer = pq.ParquetWriter(tmp, t.schema, compression="zstd")
+            writer.write_table(t, row_group_size=256_000)
+    finally:
+        if writer is not None:
+            writer.close()
+    os.replace(tmp, path)
+
+
+def run_one(mode: str, path: str) -> dict:
+    """One measurement in this process: wall seconds and this process's peak RSS."""
+    import resource
+
+    import tallfit  # imports are not part of the measurement
+
+    tallfit.fit  # noqa: B018 - resolve the lazy import
+    t0 = time.perf_counter()
+    if mode == "scan":
+        import numpy as np
+        import pyarrow.parquet as pq
+
+        pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
+        cols = FEATURES + ["power_w"]
+        for rb in pf.iter_batches(batch_size=65_536, columns=cols):
+            buf = np.empty((rb.num_rows, len(cols)), order="F")
+            for j, c in enumerate(cols):
+                buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
+    else:
+        kwargs = {}
+        if mode in ("categorical", "both"):
+            kwargs["categorical"] = ["zone", "pod"]
+        if mode in ("absorb", "both"):
+            kwargs["absorb"] = "host_id"
+        tallfit.fit(path, "power_w", FEATURES, **kwargs)
+    seconds = time.perf_counter() - t0
+    return {"seconds": seconds, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
+
+
+def measure(mode: str, path: Path, repeats: int) -> dict:
+    runs = []
+    for _ in range(repeats):
+        out = subprocess.run([sys.executable, __file__, "--run", mode, str(path)], check=True,
+                             capture_output=True, text=True, env={**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "")})
+        runs.append(json.loads(out.stdout.strip().splitlines()[-1]))
+    return {"seconds": statistics.median(r["seconds"] for r in runs),
+            "peak_rss_mb": max(r["peak_rss_mb"] for r in runs)}
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=int, default=10_000_000)
+    ap.add_argument("--hosts", type=int, default=100_000)
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--dir", default=str(HERE / "out"))
+    ap.add_argument("--run", nargs=2, metavar=("MODE", "PATH"), help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.run:
+        print(json.dumps(run_one(*args.run)))
+        return 0
+    folder = Path(args.dir)
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"design-{args.rows}-{args.hosts}.parquet"
+    if not path.exists():
+        t0 = time.perf_counter()
+        write_data(path, args.rows, args.hosts)
+        print(f"wrote {path.name} ({path.stat().st_size / 1e6:.0f} MB) in {time.perf_counter() - t0:.0f} s")
+    results = {m: measure(m, path, args.repeats) for m in MODES}
+    base = results["numeric"]["seconds"]
+    scan = results["scan"]["seconds"]
+    print(f"\n{args.rows:,} rows, zone 8 levels, pod 50 levels, host_id {args.hosts:,} levels; "
+          f"median of {args.repeats}")
+    print(f"{'run':12s} {'seconds':>8s} {'× numeric':>10s} {'× scan':>8s} {'peak RSS MB':>12s}")
+    for m in MODES:
+        r = results[m]
+        print(f"{m:12s} {r['seconds']:8.2f} {r['seconds'] / base:10.2f} {r['seconds'] / scan:8.2f} "
+              f"{r['peak_rss_mb']:12.0f}")
+    print("\ntarget: categorical and absorbed (both) at most 1.5× the numeric fit")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

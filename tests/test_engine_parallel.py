@@ -1,0 +1,118 @@
+"""Parallel folding: the same answer (to rounding) whatever the worker count, batch size or file order."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+import statsmodels.api as sm
+
+import tallfit
+from tallfit.engine.parallel import BufferPool, fold_round_robin, run_tasks, tree_merge, worker_count
+from tallfit.errors import TallfitError
+
+FEATURES = ["value", "capital"]
+
+
+@pytest.fixture(scope="module")
+def grunfeld_files(tmp_path_factory):
+    # Reference data: statsmodels.datasets.grunfeld (Grunfeld's firm-year investment panel).
+    df = sm.datasets.grunfeld.load_pandas().data[["invest", "value", "capital"]].astype(float)
+    folder = tmp_path_factory.mktemp("grunfeld")
+    paths = []
+    for i, start in enumerate(range(0, len(df), 44)):
+        part = df.iloc[start : start + 44]
+        path = folder / f"part-{i}.parquet"
+        pq.write_table(pa.Table.from_pandas(part, preserve_index=False), path, row_group_size=17)
+        paths.append(str(path))
+    ref = sm.OLS(df["invest"], sm.add_constant(df[FEATURES])).fit()  # reference: statsmodels OLS
+    return paths, ref
+
+
+@pytest.mark.parametrize("method", ["qr", "gram"])
+@pytest.mark.parametrize("workers", [1, 2, 3])
+@pytest.mark.parametrize("batch_rows", [7, 64, 10_000])
+def test_workers_and_batches_agree_with_statsmodels(grunfeld_files, workers, batch_rows, method):
+    paths, ref = grunfeld_files
+    r = tallfit.fit(paths, "invest", FEATURES, workers=workers, batch_rows=batch_rows, method=method)
+    assert r.inference.n_used == 220
+    assert np.allclose(r.inference.estimate, ref.params.values, rtol=1e-10, atol=0)
+    assert np.allclose(r.inference.std_error, ref.bse.values, rtol=1e-9, atol=0)
+    assert np.isclose(r.inference.r_squared, ref.rsquared, rtol=1e-11)
+
+
+def test_file_order_changes_only_rounding(grunfeld_files):
+    paths, _ = grunfeld_files
+    a = tallfit.fit(paths, "invest", FEATURES, workers=2)
+    b = tallfit.fit(list(reversed(paths)), "invest", FEATURES, workers=2)
+    c = tallfit.fit([paths[2], paths[0], paths[4], paths[1], paths[3]], "invest", FEATURES, workers=3)
+    for other in (b, c):
+        assert np.allclose(other.inference.estimate, a.inference.estimate, rtol=1e-12, atol=0)
+        assert other.accumulator.n_used == a.accumulator.n_used
+
+
+def test_result_does_not_depend_on_worker_count_for_a_file_set(grunfeld_files):
+    """One accumulator per file merged by the same tree: bit-identical for any number of workers."""
+    paths, _ = grunfeld_files
+    one = tallfit.fit(paths, "invest", FEATURES, workers=1)
+    two = tallfit.fit(paths, "invest", FEATURES, workers=2)
+    four = tallfit.fit(paths, "invest", FEATURES, workers=4)
+    assert np.array_equal(one.accumulator.R, two.accumulator.R)
+    assert np.array_equal(one.accumulator.R, four.accumulator.R)
+
+
+def test_progress_counts_every_row_once(grunfeld_files):
+    paths, _ = grunfeld_files
+    seen: dict[int, int] = {}
+
+    def hook(rows, file_index):
+        seen[file_index] = seen.get(file_index, 0) + rows
+
+    tallfit.fit(paths, "invest", FEATURES, workers=3, batch_rows=10, progress=hook)
+    assert sorted(seen) == list(range(5)) and sum(seen.values()) == 220
+
+
+def test_a_bad_file_among_many_is_named(grunfeld_files, tmp_path):
+    paths, _ = grunfeld_files
+    bad = tmp_path / "broken.parquet"
+    bad.write_bytes(open(paths[0], "rb").read()[:200])  # a truncated file
+    with pytest.raises(TallfitError, match="broken.parquet"):
+        tallfit.fit(paths[:2] + [str(bad)] + paths[2:], "invest", FEATURES, workers=2)
+
+
+def test_tree_merge_is_balanced_and_ordered():
+    assert tree_merge(list("abcde"), lambda x, y: f"({x}{y})") == "(((ab)(cd))e)"
+    with pytest.raises(ValueError):
+        tree_merge([], lambda x, y: x)
+
+
+def test_round_robin_folds_every_block_and_reraises_failures():
+    accs = fold_round_robin(iter(range(10)), 3, list, lambda acc, b: acc.append(b))
+    assert accs == [[0, 3, 6, 9], [1, 4, 7], [2, 5, 8]]
+
+    def failing(acc, b):
+        if b == 5:
+            raise RuntimeError("block 5 failed")
+        acc.append(b)
+
+    with pytest.raises(RuntimeError, match="block 5"):
+        fold_round_robin(iter(range(100)), 2, list, failing)
+    assert run_tasks([lambda i=i: i * i for i in range(7)], 3) == [i * i for i in range(7)]
+
+
+def test_buffer_pool_reuses_only_its_own_buffers():
+    pool = BufferPool()
+    a = pool.take((4, 3))
+    assert a.flags.f_contiguous and a.shape == (4, 3)
+    pool.give(a)
+    pool.give(np.empty((4, 3), order="F"))  # not from the pool: ignored
+    assert pool.take((4, 3)) is a
+    assert pool.take((4, 3)) is not a
+
+
+def test_worker_count_is_checked():
+    assert worker_count(None) >= 1 and worker_count(2) == 2
+    for bad in (0, -1, 1.5, True):
+        with pytest.raises(ValueError, match="workers"):
+            worker_count(bad)
