@@ -294,3 +294,9 @@ def test_group_kernels_equal_the_numpy_reference():
     merge_means(run_m, run_c, np.arange(37), means[:, :], counts)  # the same rows twice: same means
     np.testing.assert_allclose(run_m, rm, rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(run_c, 2 * rc)
+
+
+def test_second_pass_refuses_an_absorbed_model():
+    df, table = _grunfeld()
+    with pytest.raises(DesignError, match="absorbed key"):
+        tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", robust="HC3")

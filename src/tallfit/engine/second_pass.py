@@ -264,6 +264,17 @@ def second_pass(
     """Scan ``data`` once with the fitted ``model`` (see the module note)."""
     from tallfit.inputs import as_source
 
+    if not isinstance(model, FitResult):
+        raise DesignError(
+            "the second pass checks one model at a time; per-group models are not supported yet "
+            "(fit the group of interest with --where instead of --by)"
+        )
+    if model.spec.absorb:
+        raise DesignError(
+            f"robust errors and residual checks are not available for a model with an absorbed key "
+            f"({model.spec.absorb!r}) yet: its residuals need the level effects; fit without --absorb "
+            "to check the model"
+        )
     cluster = list(dict.fromkeys(cluster))
     if len(cluster) > 2:
         raise DesignError(f"clustering takes one or two key columns, not {len(cluster)} ({', '.join(cluster)})")
