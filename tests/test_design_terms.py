@@ -300,3 +300,23 @@ def test_second_pass_refuses_an_absorbed_model():
     df, table = _grunfeld()
     with pytest.raises(DesignError, match="absorbed key"):
         tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", robust="HC3")
+
+
+def test_levels_merged_by_name_equal_a_direct_fit():
+    rng = np.random.default_rng(12)
+    n = 500
+    region = rng.choice(["north-1", "north-2", "west-2", "east-3"], n)
+    x = rng.normal(size=n)
+    y = x + (region == "west-2") * 2.0 + np.isin(region, ["north-1", "north-2"]) * 1.0 + rng.normal(size=n)
+    table = pa.table({"x": x, "region": region, "y": y})
+    model = tallfit.fit(table, "y", ["x"], categorical=["region"], reference={"region": "east-3"},
+                        merge_levels={"region": {"north": ["north-1", "north-2"]}}, batch_rows=60)
+    assert model.terms == ["(intercept)", "x", "region[north]", "region[west-2]"]
+    X = np.column_stack([np.ones(n), x, np.isin(region, ["north-1", "north-2"]), region == "west-2"]).astype(float)
+    res = sm.OLS(y, X).fit()
+    np.testing.assert_allclose(model.inference.estimate, res.params, rtol=1e-10)
+    np.testing.assert_allclose(model.inference.std_error, res.bse, rtol=1e-10)
+    pred = tallfit.predict(model, pa.table({"x": [0.0, 0.0], "region": ["north-2", "north-1"]}))["prediction"]
+    assert pred[0].as_py() == pytest.approx(pred[1].as_py())
+    with pytest.raises(DesignError, match="no used rows"):
+        tallfit.fit(table, "y", ["x"], categorical=["region"], merge_levels={"region": {"n": ["south-9"]}})

@@ -53,6 +53,7 @@ def fit(
     reference: dict[str, str] | None = None,
     min_level_count: int | None = None,
     max_levels: int | None = None,
+    merge_levels: dict[str, dict[str, list[str]]] | None = None,
     absorb: str | None = None,
     by: Sequence[str] = (),
     solver: str = "exact",
@@ -103,6 +104,8 @@ def fit(
     reference, min_level_count, max_levels
         Reference level per categorical column (default: the most frequent); levels with fewer
         rows, or beyond the most frequent ``max_levels``, are merged into one "(other)" level.
+    merge_levels
+        Levels merged by name before that: ``{column: {new_level: [old_level, ...]}}``.
     solver, solver_options
         ``"exact"`` (default), or an iterative solver (``"gd"``, ``"cg"``, ``"lbfgs"``, ``"sgd"``;
         see ``tallfit.solve.iterative``) run after the factor pass, one more pass per iteration or
@@ -147,11 +150,11 @@ def fit(
                 "absorbed keys or robust errors; drop those options or fit one group at a time"
             )
         return fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol,
-                             conf_level, reference, min_level_count, max_levels)
+                             conf_level, reference, min_level_count, max_levels, merge_levels)
     raw = local.accumulate(source, spec, batch_rows, progress, design=design, workers=workers, method=method)
     absorber = raw if spec.absorb else None
     acc = absorber.inner if absorber else raw
-    acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels)
+    acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels)
     notes = [
         f"categorical column {c!r} has more than {WIDE_LEVELS} levels as dense indicator columns; "
         "a key of that many values is better absorbed (fixed effects) than expanded"
@@ -281,6 +284,7 @@ def validate(
     reference: dict[str, str] | None = None,
     min_level_count: int | None = None,
     max_levels: int | None = None,
+    merge_levels: dict[str, dict[str, list[str]]] | None = None,
     weights: str | None = None,
     weight_kind: str = "analytic",
     absorb: str | None = None,
@@ -319,7 +323,7 @@ def validate(
     plan = FoldPlan(folds=folds, fold_key=fold_key, holdout=holdout, holdout_key=holdout_key, seed=seed)
     source = as_source(data, format=format, delimiter=delimiter)
     accs = accumulate_split(source, spec, plan, batch_rows, progress)
-    accs, coding = finalize_split(accs, spec, reference, min_level_count, max_levels)
+    accs, coding = finalize_split(accs, spec, reference, min_level_count, max_levels, merge_levels)
     options = {"batch_rows": int(batch_rows), "drop_aliased": bool(drop_aliased), "rank_tol": float(rank_tol),
                "conf_level": float(conf_level), "min_level_count": min_level_count, "max_levels": max_levels,
                "split": plan.to_dict()}

@@ -32,7 +32,7 @@ def with_robust(result: FitResult, source, robust, cluster, batch_rows, progress
 
 
 def fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol, conf_level,
-                  reference, min_level_count, max_levels):
+                  reference, min_level_count, max_levels, merge_levels=None):
     """One model per value of the ``by`` columns, from one pass (see tallfit.grouped)."""
     from tallfit.grouped import fit_groups
 
@@ -40,7 +40,7 @@ def fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_
                "rank_tol": float(rank_tol), "conf_level": float(conf_level)}
 
     def finalize(acc):
-        acc, coding, _ = finalize_coding(acc, spec, reference, min_level_count, max_levels)
+        acc, coding, _ = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels)
         return fit_from_accumulator(spec, acc, on_aliased="drop" if drop_aliased else "error",
                                     rank_tol=rank_tol, conf_level=conf_level, coding=coding, options=options)
 

@@ -47,6 +47,18 @@ def _pairs(values: list[str], what: str) -> dict[str, str]:
     return out
 
 
+def _merges(values: list[str]) -> dict[str, dict[str, list[str]]]:
+    out: dict[str, dict[str, list[str]]] = {}
+    for v in values:
+        col, sep, rest = v.partition(":")
+        new, sep2, olds = rest.partition("=")
+        levels = [o.strip() for o in olds.split("+") if o.strip()]
+        if not (sep and sep2 and col.strip() and new.strip() and levels):
+            raise DesignError(f"--merge-levels expects COLUMN:NEW=OLD+OLD, got {v!r}")
+        out.setdefault(col.strip(), {})[new.strip()] = levels
+    return out
+
+
 def add_design_options(p: argparse.ArgumentParser) -> None:
     """Options that shape the design matrix (shared by every command that fits)."""
     g = p.add_argument_group("design terms")
@@ -54,6 +66,7 @@ def add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--reference", action="append", default=[], metavar="COL=LEVEL", help="reference level of a categorical column (default: its most frequent level)")
     g.add_argument("--min-level-rows", type=int, default=None, metavar="N", help="merge levels with fewer rows than N into one '(other)' level")
     g.add_argument("--max-levels", type=int, default=None, metavar="K", help="keep the K most frequent levels of each categorical column, merge the rest")
+    g.add_argument("--merge-levels", action="append", default=[], metavar="COL:NEW=OLD+OLD", help="merge named levels of a categorical column into one, e.g. 'region:north=north-1+north-2' (repeatable)")
     g.add_argument("--derive", action="append", default=[], metavar="'NAME = EXPR'", help="a derived feature as an SQL expression, e.g. 'log_iops = ln(disk_iops + 1)' (repeatable)")
     g.add_argument("--interactions", type=split_list, default=[], metavar="COLS", help="add all pairwise products of these columns as features")
     g.add_argument("--poly", action="append", default=[], metavar="COL=DEGREE", help="add powers 2..DEGREE of a column as features (repeatable)")
@@ -78,6 +91,7 @@ def design_kwargs(args) -> dict:
         "reference": _pairs(args.reference, "--reference") or None,
         "min_level_count": args.min_level_rows,
         "max_levels": args.max_levels,
+        "merge_levels": _merges(args.merge_levels) or None,
         "derive": args.derive,
         "interactions": args.interactions,
         "polynomials": poly or None,

@@ -19,11 +19,30 @@ from tallfit.errors import DesignError
 OTHER = "(other)"
 
 
+def _named_groups(col: str, seen: dict[str, int], merges: dict[str, list[str]] | None) -> dict[str, str]:
+    """Level → the level it is merged into by the user's ``{new: [old, ...]}`` (itself if none)."""
+    alias = {lvl: lvl for lvl in seen}
+    for new, olds in (merges or {}).items():
+        for old in olds:
+            if old not in seen:
+                raise DesignError(
+                    f"cannot merge level {old!r} of {col!r}: it has no used rows "
+                    f"(levels: {', '.join(sorted(seen)[:10])})"
+                )
+            alias[old] = new
+    return alias
+
+
 def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_count: int | None,
-                 max_levels: int | None, needs_reference: bool) -> dict:
-    seen = {lvl: n for lvl, n in counts.items() if n > 0}
-    if not seen:
+                 max_levels: int | None, needs_reference: bool,
+                 merges: dict[str, list[str]] | None = None) -> dict:
+    raw = {lvl: n for lvl, n in counts.items() if n > 0}
+    if not raw:
         raise DesignError(f"categorical column {col!r} has no level with usable rows")
+    alias = _named_groups(col, raw, merges)
+    seen: dict[str, int] = {}
+    for lvl, n in raw.items():
+        seen[alias[lvl]] = seen.get(alias[lvl], 0) + n
     ranked = sorted(seen, key=lambda lvl: (-seen[lvl], lvl))
     merged = set()
     if min_count:
@@ -57,14 +76,15 @@ def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_co
         columns.append(OTHER)
     offset = {g: i for i, g in enumerate(columns)}
     column_of = {}
-    for lvl in seen:
-        group = OTHER if lvl in merged else lvl
+    for lvl in raw:
+        group = OTHER if alias[lvl] in merged else alias[lvl]
         column_of[lvl] = offset.get(group, -1)
     return {
         "columns": columns,
         "column_of": column_of,
         "reference": reference,
         "merged": sorted(merged),
+        "merged_by_name": {new: sorted(olds) for new, olds in (merges or {}).items()},
         "other_column": offset.get(OTHER),
         "counts": dict(sorted(seen.items(), key=lambda kv: (-kv[1], kv[0]))),
     }
@@ -76,14 +96,15 @@ def finalize_coding(
     reference: dict[str, str] | None = None,
     min_count: int | None = None,
     max_levels: int | None = None,
+    merges: dict[str, dict[str, list[str]]] | None = None,
 ) -> tuple[FactorAccumulator, dict | None, np.ndarray | None]:
     """Recode the factor to the final categorical coding: (new accumulator, coding, map T)."""
     if not spec.categorical:
         return acc, None, None
     reference = reference or {}
-    unknown = set(reference) - set(spec.categorical)
+    unknown = (set(reference) | set(merges or {})) - set(spec.categorical)
     if unknown:
-        raise DesignError(f"reference level given for {sorted(unknown)}, which are not categorical columns")
+        raise DesignError(f"levels given for {sorted(unknown)}, which are not categorical columns")
     raw_index = {n: i for i, n in enumerate(acc.names)}
     base = spec.term_names
     names = list(base)
@@ -91,7 +112,8 @@ def finalize_coding(
     columns = {}
     for pos, col in enumerate(spec.categorical):
         needs_ref = spec.has_intercept_column or pos > 0 or bool(spec.absorb)
-        plan = _plan_column(col, acc.level_counts.get(col, {}), reference.get(col), min_count, max_levels, needs_ref)
+        plan = _plan_column(col, acc.level_counts.get(col, {}), reference.get(col), min_count, max_levels,
+                            needs_ref, (merges or {}).get(col))
         for group in plan["columns"]:
             names.append(indicator_name(col, group))
             members = [lvl for lvl, off in plan["column_of"].items() if off == plan["columns"].index(group)]

@@ -51,7 +51,7 @@ def accumulate_split(
 
 
 def finalize_split(accs: FoldAccumulators, spec: ModelSpec, reference=None, min_count=None,
-                   max_levels=None) -> tuple[FoldAccumulators, dict | None]:
+                   max_levels=None, merges=None) -> tuple[FoldAccumulators, dict | None]:
     """Give every fold and the holdout the final layout and the categorical coding of the training rows.
 
     Folds may have met different categorical levels; each is aligned to the union of columns,
@@ -70,12 +70,12 @@ def finalize_split(accs: FoldAccumulators, spec: ModelSpec, reference=None, min_
         coded = parts
         coding = None
     else:
-        _, coding, _ = finalize_coding(train, spec, reference, min_count, max_levels)
+        _, coding, _ = finalize_coding(train, spec, reference, min_count, max_levels, merges)
         coded = []
         for a in parts:  # the training counts fix the plan; each factor keeps its own counts
             own = a.level_counts
             recoded, _, _ = finalize_coding(replace(a, level_counts=train.level_counts), spec, reference,
-                                         min_count, max_levels)
+                                         min_count, max_levels, merges)
             coded.append(replace(recoded, level_counts=own))
     k = len(accs.folds)
     return replace(accs, folds=coded[:k], holdout=coded[k] if accs.holdout is not None else None), coding

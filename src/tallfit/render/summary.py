@@ -80,6 +80,8 @@ def _design_lines(result: FitResult) -> list[str]:
     for col, c in (result.coding or {}).get("columns", {}).items():
         ref = f"reference {c['reference']!r}" if c["reference"] is not None else "no reference (no intercept)"
         merged = f", {len(c['merged'])} rare merged into (other)" if c["merged"] else ""
+        for new, olds in (c.get("merged_by_name") or {}).items():
+            merged += f", {new!r} = {' + '.join(olds)}"
         lines.append(f"levels of {col}: {len(c['counts'])} seen, {ref}{merged}")
     return [f"design    {lines[0]}"] + [f"          {ln}" for ln in lines[1:]] if lines else []
 
