@@ -45,6 +45,16 @@ def timed(fn) -> tuple[float, object]:
     return time.perf_counter() - t, out
 
 
+def median_seconds(fn, repeats: int) -> float:
+    """Median wall time of `repeats` in-process calls of fn (for passes timed inside one process)."""
+    runs = []
+    for _ in range(repeats):
+        t = time.perf_counter()
+        fn()
+        runs.append(time.perf_counter() - t)
+    return statistics.median(runs)
+
+
 def run_child(script: str, *args: str, env: dict | None = None, timeout: float = 3600) -> dict:
     """Run bench/<script> in a fresh interpreter and return its JSON result (plus the parent's RSS view)."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss

@@ -18,16 +18,13 @@ and prints time ratios to the numeric fit (target: categorical + absorbed ≤ 1.
 from __future__ import annotations
 
 import argparse
-import json
 import os
-import statistics
-import subprocess
 import sys
 import time
 from pathlib import Path
 
-HERE = Path(__file__).resolve().parent
-FEATURES = ["cpu_util", "mem_bw_gbps", "disk_iops", "net_gbps", "inlet_temp_c", "fan_rpm"]
+from _measure import BASE_FEATURES, OUT, TARGET, median_runs, report, timed
+
 MODES = ["scan", "numeric", "categorical", "absorb", "both"]
 
 
@@ -57,42 +54,33 @@ def write_data(path: Path, rows: int, hosts: int) -> None:
 
 
 def run_one(mode: str, path: str) -> dict:
-    """One measurement in this process: wall seconds and this process's peak RSS."""
-    import resource
+    """One measurement in this process (timed after the imports)."""
+    import tallfit
 
-    import tallfit  # imports are not part of the measurement
-
-    tallfit.fit  # noqa: B018 - resolve the lazy import
-    t0 = time.perf_counter()
+    tallfit.fit  # noqa: B018 - resolve the lazy import before timing
     if mode == "scan":
         import numpy as np
         import pyarrow.parquet as pq
 
-        pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
-        cols = FEATURES + ["power_w"]
-        for rb in pf.iter_batches(batch_size=65_536, columns=cols):
-            buf = np.empty((rb.num_rows, len(cols)), order="F")
-            for j, c in enumerate(cols):
-                buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
+        def work():
+            pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
+            cols = list(BASE_FEATURES) + [TARGET]
+            for rb in pf.iter_batches(batch_size=65_536, columns=cols):
+                buf = np.empty((rb.num_rows, len(cols)), order="F")
+                for j, c in enumerate(cols):
+                    buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
     else:
         kwargs = {}
         if mode in ("categorical", "both"):
             kwargs["categorical"] = ["zone", "pod"]
         if mode in ("absorb", "both"):
             kwargs["absorb"] = "host_id"
-        tallfit.fit(path, "power_w", FEATURES, **kwargs)
-    seconds = time.perf_counter() - t0
-    return {"seconds": seconds, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}
 
+        def work():
+            tallfit.fit(path, TARGET, list(BASE_FEATURES), **kwargs)
 
-def measure(mode: str, path: Path, repeats: int) -> dict:
-    runs = []
-    for _ in range(repeats):
-        out = subprocess.run([sys.executable, __file__, "--run", mode, str(path)], check=True,
-                             capture_output=True, text=True, env={**os.environ, "PYTHONPATH": os.environ.get("PYTHONPATH", "")})
-        runs.append(json.loads(out.stdout.strip().splitlines()[-1]))
-    return {"seconds": statistics.median(r["seconds"] for r in runs),
-            "peak_rss_mb": max(r["peak_rss_mb"] for r in runs)}
+    seconds, _ = timed(work)
+    return {"seconds": seconds}
 
 
 def main() -> int:
@@ -100,11 +88,11 @@ def main() -> int:
     ap.add_argument("--rows", type=int, default=10_000_000)
     ap.add_argument("--hosts", type=int, default=100_000)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--dir", default=str(HERE / "out"))
+    ap.add_argument("--dir", default=str(OUT))
     ap.add_argument("--run", nargs=2, metavar=("MODE", "PATH"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.run:
-        print(json.dumps(run_one(*args.run)))
+        report(run_one(*args.run))
         return 0
     folder = Path(args.dir)
     folder.mkdir(parents=True, exist_ok=True)
@@ -113,7 +101,7 @@ def main() -> int:
         t0 = time.perf_counter()
         write_data(path, args.rows, args.hosts)
         print(f"wrote {path.name} ({path.stat().st_size / 1e6:.0f} MB) in {time.perf_counter() - t0:.0f} s")
-    results = {m: measure(m, path, args.repeats) for m in MODES}
+    results = {m: median_runs("bench_design.py", ["--run", m, str(path)], args.repeats) for m in MODES}
     base = results["numeric"]["seconds"]
     scan = results["scan"]["seconds"]
     print(f"\n{args.rows:,} rows, zone 8 levels, pod 50 levels, host_id {args.hosts:,} levels; "

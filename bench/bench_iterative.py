@@ -20,13 +20,13 @@ the bare Parquet scan with the cache).
 from __future__ import annotations
 
 import argparse
-import statistics
 import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
 
+from _measure import median_seconds
 import synthetic_gen
 import tallfit
 from tallfit.engine.cache import DesignPasses
@@ -36,15 +36,6 @@ from tallfit.solve.iterative.driver import prepare
 from tallfit.solve.iterative.stopping import History
 
 EXTRA = 14
-
-
-def median_time(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return statistics.median(times)
 
 
 def bare_scan(path: Path, columns: list[str], batch_rows: int) -> None:
@@ -94,13 +85,13 @@ def main() -> None:
             exact = tallfit.fit(path, synthetic_gen.TARGET, features, batch_rows=args.batch_rows)
             problem, monitor, _ = prepare(exact.accumulator, exact.spec, standardize=True)
             src = as_source(path)
-            scans[fmt] = median_time(lambda: bare_scan(path, columns, args.batch_rows), args.repeats)
+            scans[fmt] = median_seconds(lambda: bare_scan(path, columns, args.batch_rows), args.repeats)
             print(f"\n{fmt}: {path.stat().st_size / 1e6:,.0f} MB, bare scan {scans[fmt]:.2f} s "
                   f"({args.rows / scans[fmt] / 1e6:.2f} M rows/s)")
             with DesignPasses(src, exact.spec, args.batch_rows, coding=exact.coding) as passes:
                 for name, fn in pass_kinds(problem, monitor, passes).items():
                     fn()  # warm (numba compile from its cache)
-                    t = median_time(fn, args.repeats)
+                    t = median_seconds(fn, args.repeats)
                     print(f"  {name:14} {t:6.2f} s   {t / scans[fmt]:5.2f} × bare {fmt} scan (target ≤ 1.2)", flush=True)
             with DesignPasses(src, exact.spec, args.batch_rows, coding=exact.coding, cache=True) as passes:
                 t0 = time.perf_counter()
@@ -112,7 +103,7 @@ def main() -> None:
                       f"({info['bytes'] / 1e6:,.0f} MB, float64)")
                 for name, fn in pass_kinds(problem, monitor, passes).items():
                     fn()
-                    t = median_time(fn, args.repeats)
+                    t = median_seconds(fn, args.repeats)
                     floor = scans.get("parquet", scans[fmt])
                     print(f"  cached {name:7} {t:6.2f} s   {t / floor:5.2f} × bare Parquet scan (target ≤ 0.5)",
                           flush=True)

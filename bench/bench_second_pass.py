@@ -19,24 +19,15 @@ from __future__ import annotations
 
 import argparse
 import resource
-import statistics
 import tempfile
 import time
 from pathlib import Path
 
+from _measure import median_seconds
 import synthetic_gen
 from tallfit.engine.local import accumulate
 from tallfit.engine.second_pass import second_pass
 from tallfit.inputs import as_source
-
-
-def timed(fn, repeats: int) -> float:
-    runs = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        runs.append(time.perf_counter() - t0)
-    return statistics.median(runs)
 
 
 def main() -> None:
@@ -62,12 +53,12 @@ def main() -> None:
             for _ in source.batches(columns, args.batch_rows):
                 pass
 
-        t_scan = timed(scan, args.repeats)
-        t_fit = timed(lambda: accumulate(source, model.spec, args.batch_rows), args.repeats)
-        t_two = timed(lambda: second_pass(model, source, batch_rows=args.batch_rows), args.repeats)
-        t_robust = timed(lambda: second_pass(model, source, diagnostics=False, batch_rows=args.batch_rows),
+        t_scan = median_seconds(scan, args.repeats)
+        t_fit = median_seconds(lambda: accumulate(source, model.spec, args.batch_rows), args.repeats)
+        t_two = median_seconds(lambda: second_pass(model, source, batch_rows=args.batch_rows), args.repeats)
+        t_robust = median_seconds(lambda: second_pass(model, source, diagnostics=False, batch_rows=args.batch_rows),
                          args.repeats)
-        t_clu = timed(lambda: second_pass(model, source, cluster=["host_id"], batch_rows=args.batch_rows),
+        t_clu = median_seconds(lambda: second_pass(model, source, cluster=["host_id"], batch_rows=args.batch_rows),
                       args.repeats)
         print(f"{args.rows:,} rows × {len(features)} features, batch_rows={args.batch_rows:,}, "
               f"median of {args.repeats}")
