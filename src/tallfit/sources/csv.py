@@ -11,13 +11,13 @@ import pyarrow.csv as pacsv
 from tallfit.errors import DataSourceError, SchemaError
 
 from .base import Located
-from .text import (ENGINES, LEAD_BYTES, MIN_BLOCK, NULL_TOKENS, LineBlocks, block_target, convert,
-                   find_bad, first_line_end, open_text, polars_type, text_type, bad_value_error)
+from .text import (BAD_STATUS, ENGINES, LEAD_BYTES, MIN_BLOCK, NULL_TOKENS, LineBlocks, block_target, convert,
+                   find_bad, first_line_end, open_text, polars_type, stream_batches, text_type, bad_value_error)
 
 #: Parser used by default; chosen by bench/bench_readers.py (see README.md in this folder).
 DEFAULT_ENGINE = "pyarrow"
 QUOTE = b'"'
-_BAD_STATUS = (pa.ArrowException, pl.exceptions.PolarsError, OSError, ValueError)
+_BAD_STATUS = BAD_STATUS
 
 
 def normalize_delimiter(delimiter: str) -> str:
@@ -178,13 +178,4 @@ class CsvReader:
                                         convert_options=self._convert_opts(columns, types))
             except _BAD_STATUS as exc:
                 raise DataSourceError(f"{loc.path}: cannot read CSV ({exc})") from None
-            row = 0
-            while True:
-                try:
-                    rb = reader.read_next_batch()
-                except StopIteration:
-                    return
-                except _BAD_STATUS as exc:
-                    raise DataSourceError(f"{loc.path}: cannot parse data after row {row:,} ({exc})") from None
-                yield rb
-                row += rb.num_rows
+            yield from stream_batches(reader, loc, _BAD_STATUS)

@@ -14,12 +14,12 @@ import pyarrow.json as pajson
 from tallfit.errors import DataSourceError
 
 from .base import Located
-from .text import (ENGINES, LEAD_BYTES, NULL_TOKENS, LineBlocks, block_target, convert, nan_to_null,
-                   open_text, polars_type, text_type)
+from .text import (BAD_STATUS, ENGINES, LEAD_BYTES, NULL_TOKENS, LineBlocks, block_target, convert, nan_to_null,
+                   open_text, polars_type, stream_batches, text_type)
 
 #: Parser used by default; chosen by bench/bench_readers.py (see README.md in this folder).
 DEFAULT_ENGINE = "polars"
-_BAD_STATUS = (pa.ArrowException, pl.exceptions.PolarsError, OSError, ValueError)
+_BAD_STATUS = BAD_STATUS
 
 
 def _pl_json_type(t: pa.DataType) -> pl.DataType:
@@ -187,13 +187,5 @@ class JsonlReader:
                 reader = pajson.open_json(fresh, read_options=opts, parse_options=self._parse_opts(columns, types))
             except _BAD_STATUS as exc:
                 raise DataSourceError(f"{loc.path}: cannot read JSON lines ({exc})") from None
-            row = 0
-            while True:
-                try:
-                    rb = reader.read_next_batch()
-                except StopIteration:
-                    return
-                except _BAD_STATUS as exc:
-                    raise DataSourceError(f"{loc.path}: cannot parse data after row {row:,} ({exc})") from None
+            for rb in stream_batches(reader, loc, _BAD_STATUS):
                 yield pa.RecordBatch.from_arrays([nan_to_null(rb.column(c)) for c in columns], names=columns)
-                row += rb.num_rows

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 import pyarrow as pa
 import pyarrow.compute as pc
 import polars as pl
@@ -176,3 +178,21 @@ def convert(arr: pa.Array, target: pa.DataType, loc: Located, column: str, row: 
                                   f"in data rows from {row:,} ({exc})") from None
         line = None if line_offset is None else row + idx + line_offset
         raise bad_value_error(loc, column, arr[idx].as_py(), row + idx, target, line) from None
+
+
+#: What the text parsers raise on unreadable input.
+BAD_STATUS = (pa.ArrowException, pl.exceptions.PolarsError, OSError, ValueError)
+
+
+def stream_batches(reader, loc: Located, bad_status: tuple = BAD_STATUS) -> Iterator[pa.RecordBatch]:
+    """Batches of one of pyarrow's streaming readers, a parse failure named with file and row."""
+    row = 0
+    while True:
+        try:
+            rb = reader.read_next_batch()
+        except StopIteration:
+            return
+        except bad_status as exc:
+            raise DataSourceError(f"{loc.path}: cannot parse data after row {row:,} ({exc})") from None
+        yield rb
+        row += rb.num_rows
