@@ -25,17 +25,15 @@ DEFAULT_BATCH_ROWS = 65_536
 ProgressHook = Callable[[int, int], None]  # (rows in this batch, file index)
 
 
+def span_label(source, file_index: int, row_start: int, n_rows: int) -> str:
+    """How messages name a stretch of rows: the file (or the data set) and the row range."""
+    files = getattr(source, "files", [])
+    name = files[file_index].path if 0 <= file_index < len(files) else source.describe()
+    return f"{name}, rows {row_start}-{row_start + n_rows - 1}"
+
+
 def chunk_label(source, chunk) -> str:
-    files = getattr(source, "files", [])
-    name = files[chunk.file_index].path if 0 <= chunk.file_index < len(files) else source.describe()
-    return f"{name}, rows {chunk.row_start}-{chunk.row_start + chunk.batch.num_rows - 1}"
-
-
-def chunk_label_of(source, block) -> str:
-    """The file and row range a design block came from."""
-    files = getattr(source, "files", [])
-    name = files[block.file_index].path if 0 <= block.file_index < len(files) else source.describe()
-    return f"{name}, rows {block.row_start}-{block.row_start + block.n_read - 1}"
+    return span_label(source, chunk.file_index, chunk.row_start, chunk.batch.num_rows)
 
 
 def design_blocks(
@@ -124,7 +122,7 @@ def accumulate(
         absorbed = AbsorbAccumulator(spec.absorb, spec.term_names + [spec.target])
         blocks = design_blocks(source, spec, batch_rows, progress, extra_columns=[spec.absorb], design=design)
         for block in blocks:
-            absorbed.update_block(block, block.extra[spec.absorb], chunk_label_of(source, block))
+            absorbed.update_block(block, block.extra[spec.absorb], span_label(source, block.file_index, block.row_start, block.n_read))
         count_pruned(source, absorbed.inner)
         return absorbed
     from tallfit.engine.passes import factor_pass

@@ -26,7 +26,7 @@ from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
 from tallfit.diagnostics.kernels import grid_counts, grid_index
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.kernels.lapack_calls import single_blas_thread
-from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
+from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks, span_label
 from tallfit.errors import DesignError
 from tallfit.results import FitResult
 from tallfit.solve.exact import reduce_factor
@@ -186,9 +186,7 @@ class _Pass:
             self._fold(b)
 
     def _where(self, block) -> str:
-        files = getattr(self.source, "files", [])
-        name = files[block.file_index].path if 0 <= block.file_index < len(files) else self.source.describe()
-        return f"{name}, batch from row {block.row_start}"
+        return span_label(self.source, block.file_index, block.row_start, block.n_read)
 
     def _fold(self, block) -> None:
         m = block.n_used
