@@ -16,7 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tallfit.accumulate.factor import FactorAccumulator
-from tallfit.design.categorical import level_strings
+from tallfit.design.categorical import level_strings, recount_levels
 from tallfit.errors import DesignError
 from tallfit.results import FitResult
 
@@ -138,19 +138,13 @@ class GroupAccumulators:
 
     def _count_levels(self, block, codes, dictionary) -> None:
         """Rows per categorical level, per group (from the indicator columns of the block)."""
-        names = block.names
-        for col in block.level_counts:
-            prefix = f"{col}["
-            cols = [(i, n[len(prefix):-1]) for i, n in enumerate(names) if n.startswith(prefix) and n.endswith("]")]
-            for code in np.unique(codes[codes >= 0]):
-                rows = codes == code
-                acc = self.accs[dictionary[code]]
+        for code in np.unique(codes[codes >= 0]):
+            acc = self.accs[dictionary[code]]
+            part = recount_levels(block.A[codes == code], block.names, block.level_counts)
+            for col, counts in part.items():
                 d = acc.level_counts.setdefault(col, {})
-                sub = block.A[rows]
-                for i, lvl in cols:
-                    c = int(np.count_nonzero(sub[:, i]))
-                    if c:
-                        d[lvl] = d.get(lvl, 0) + c
+                for lvl, c in counts.items():
+                    d[lvl] = d.get(lvl, 0) + c
 
 
 def fit_groups(source, spec, batch_rows, progress, design, finalize, budget: int = DEFAULT_MEMORY_BUDGET) -> GroupedFit:

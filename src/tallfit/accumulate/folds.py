@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tallfit.accumulate.factor import FactorAccumulator
-from tallfit.design.spec import indicator_name
+from tallfit.design.categorical import recount_levels
 from tallfit.errors import DesignError, SchemaError
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -169,12 +169,7 @@ def _part(block, A: np.ndarray):
     entry in column "col[L]", weighted or not), so each fold knows its own levels; read counts,
     drops and fills stay with the whole pass.
     """
-    levels = None
-    if block.level_counts:
-        index = {n: i for i, n in enumerate(block.names)}
-        levels = {col: {lvl: int(np.count_nonzero(A[:, index[indicator_name(col, lvl)]]))
-                        for lvl in counts if indicator_name(col, lvl) in index}
-                  for col, counts in block.level_counts.items()}
+    levels = recount_levels(A, block.names, block.level_counts) if block.level_counts else None
     return replace(block, A=A, n_read=A.shape[0], dropped_by_column={}, keep=None, extra={}, col_min=None,
                    col_max=None, weight_sum=None, weight_log_sum=None, level_counts=levels, filled={})
 

@@ -125,3 +125,19 @@ class LevelCoder:
         rows = np.flatnonzero(codes >= 0)
         M[rows, codes[rows]] = 1.0
         return M
+
+
+def recount_levels(A: np.ndarray, names: list[str], levels: dict[str, dict[str, int]]) -> dict[str, dict[str, int]]:
+    """Rows per categorical level among the rows of A, recounted from its indicator columns (a
+    row of level L is non-zero in column "col[L]", weighted or not); for parts of a block."""
+    index = {n: i for i, n in enumerate(names)}
+    out: dict[str, dict[str, int]] = {}
+    for col, counts in levels.items():
+        d = out[col] = {}
+        for lvl in counts:
+            j = index.get(indicator_name(col, lvl))
+            if j is not None:
+                c = int(np.count_nonzero(A[:, j]))
+                if c:
+                    d[lvl] = c
+    return out
