@@ -45,3 +45,12 @@ def test_progress_is_off_when_not_a_terminal(tmp_path):
         tallfit.fit(src, "y", ["x"], progress=prog)
     assert not prog.enabled and out.getvalue() == ""
     assert prog.rows == 15_000
+
+
+def test_a_second_pass_starts_a_new_count(tmp_path):
+    src = _data(tmp_path)
+    with ScanProgress(src, stream=_Terminal()) as prog:
+        for _ in range(2):
+            for chunk in src.batches(["x", "y"], 5000):
+                prog(chunk.batch.num_rows, chunk.file_index)
+    assert prog.passes == 2 and prog.rows == 15_000

@@ -46,8 +46,16 @@ class ScanProgress:
         self._task = None
         self._start = time.perf_counter()
         self._last = 0.0
+        self.passes = 1
 
     def __call__(self, rows: int, file_index: int) -> None:
+        if self.total_rows and self.rows >= self.total_rows:  # a further pass (refinement, report)
+            self.passes += 1
+            self.rows = 0
+            self._start = time.perf_counter()
+            if self._progress is not None:
+                self._progress.reset(self._task, description=f"{self.label} (pass {self.passes})",
+                                     total=self.total_rows)
         self.rows += rows
         self.file_index = file_index
         if self._progress is not None:
@@ -89,13 +97,6 @@ class ScanProgress:
         )
         self._progress.start()
         return self
-
-    def new_pass(self, label: str) -> None:
-        """Start counting another pass over the same data."""
-        self.rows = 0
-        self._start = time.perf_counter()
-        if self._progress is not None:
-            self._progress.reset(self._task, description=label, total=self.total_rows)
 
     def refresh_fields(self) -> None:
         if self._progress is None:
