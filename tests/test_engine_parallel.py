@@ -116,3 +116,85 @@ def test_worker_count_is_checked():
     for bad in (0, -1, 1.5, True):
         with pytest.raises(ValueError, match="workers"):
             worker_count(bad)
+
+
+# ---- one Parquet file split into runs of row groups (engine.parallel.SPAN_ROWS)
+
+@pytest.fixture()
+def one_file_of_many_row_groups(tmp_path, monkeypatch):
+    """Grunfeld's panel as one Parquet file of 13 row groups, split into parts of ≥ 40 rows."""
+    import tallfit.engine.parallel as parallel
+
+    monkeypatch.setattr(parallel, "SPAN_ROWS", 40)
+    df = sm.datasets.grunfeld.load_pandas().data[["invest", "value", "capital"]].astype(float)
+    path = tmp_path / "panel.parquet"
+    pq.write_table(pa.Table.from_pandas(df, preserve_index=False), path, row_group_size=17)
+    ref = sm.OLS(df["invest"], sm.add_constant(df[FEATURES])).fit()  # reference: statsmodels OLS
+    return str(path), ref
+
+
+def test_parts_of_one_file_cover_its_row_groups_in_order(one_file_of_many_row_groups):
+    from tallfit.inputs import as_source
+
+    path, _ = one_file_of_many_row_groups
+    parts = as_source(path).parts(40)
+    spans = [sub._span for sub, _ in parts]
+    assert spans[0][0] == 0 and spans[-1][1] == 13  # 220 rows in groups of 17: 13 row groups
+    assert all(a[1] == b[0] for a, b in zip(spans, spans[1:]))
+    assert [s[2] for s in spans] == [17 * s[0] for s in spans]  # first row of each part, in file rows
+    rows = [sum(c.batch.num_rows for c in sub.batches(["invest"], 7)) for sub, _ in parts]
+    assert sum(rows) == 220 and all(r >= 40 for r in rows)
+
+
+@pytest.mark.parametrize("method", ["qr", "gram"])
+def test_one_split_file_agrees_with_statsmodels_for_any_worker_count(one_file_of_many_row_groups, method):
+    path, ref = one_file_of_many_row_groups
+    fits = [tallfit.fit(path, "invest", FEATURES, workers=w, batch_rows=8, method=method) for w in (1, 2, 3)]
+    for r in fits:
+        assert r.inference.n_used == 220
+        assert np.allclose(r.inference.estimate, ref.params.values, rtol=1e-10, atol=0)
+        assert np.allclose(r.inference.std_error, ref.bse.values, rtol=1e-9, atol=0)
+    for r in fits[1:]:  # same parts, same merge tree: bit-identical
+        assert np.array_equal(r.accumulator.R, fits[0].accumulator.R)
+
+
+def test_parts_number_their_rows_from_the_start_of_the_file(one_file_of_many_row_groups):
+    """Messages name rows of the file (engine.local.chunk_label), so a part's chunks carry file rows."""
+    from tallfit.engine.local import chunk_label
+    from tallfit.inputs import as_source
+
+    path, _ = one_file_of_many_row_groups
+    expected = 0
+    for sub, file_index in as_source(path).parts(40):
+        assert file_index == 0
+        for chunk in sub.batches(["invest"], 8):
+            assert chunk.row_start == expected
+            assert chunk_label(sub, chunk) == f"{path}, rows {expected}-{expected + chunk.batch.num_rows - 1}"
+            expected += chunk.batch.num_rows
+    assert expected == 220
+
+
+def test_row_group_spans_take_whole_groups_and_a_short_tail_joins_the_last():
+    from tallfit.sources.base import _row_group_spans
+
+    assert _row_group_spans([10] * 10, 30) == [(0, 3, 0), (3, 6, 30), (6, 10, 60)]
+    assert _row_group_spans([10] * 7, 30) == [(0, 3, 0), (3, 7, 30)]
+    assert _row_group_spans([100, 5, 5], 50) == [(0, 3, 0)]
+    assert _row_group_spans([100, 30, 5], 50) == [(0, 1, 0), (1, 3, 100)]
+    assert _row_group_spans([], 50) == []
+
+
+def test_in_place_fold_equals_the_copying_fold():
+    from tallfit.kernels.tsqr import fold_rows
+
+    rng = np.random.default_rng(3)
+    A = np.asfortranarray(rng.standard_normal((5000, 9)))
+    R0 = np.triu(rng.standard_normal((9, 9)))
+    padded = np.empty((5064, 9), order="F")[:5000]
+    padded[...] = A
+    a = fold_rows(R0, A, tile_rows=700)
+    b = fold_rows(R0, padded, tile_rows=700, overwrite=True)
+    assert np.array_equal(a, b)  # the same reflectors on the same numbers
+    assert not np.array_equal(padded, A)  # it did work in place
+    c = np.linalg.qr(np.vstack([R0, A]), mode="r")  # reference: numpy's Householder QR
+    assert np.allclose(np.abs(a), np.abs(c), rtol=1e-12, atol=1e-12)

@@ -63,29 +63,33 @@ class FactorAccumulator:
 
     # -- update ---------------------------------------------------------------------------------
     def update(self, A: np.ndarray, n_read: int | None = None, dropped: dict[str, int] | None = None,
-               col_min: np.ndarray | None = None, col_max: np.ndarray | None = None) -> None:
-        """Fold the usable rows A (m × k) into the factor and the counts."""
+               col_min: np.ndarray | None = None, col_max: np.ndarray | None = None, *,
+               overwrite: bool = False) -> None:
+        """Fold the usable rows A (m × k) into the factor and the counts (``overwrite``: A may be
+        destroyed, which saves a copy)."""
         if A.shape[1] != self.k:
             raise ValueError(f"block has {A.shape[1]} columns, accumulator has {self.k}")
         if A.shape[0]:
-            self.R = fold_rows(self.R, A)
+            self.R = fold_rows(self.R, A, overwrite=overwrite)
             np.minimum(self.col_min, A.min(axis=0) if col_min is None else col_min, out=self.col_min)
             np.maximum(self.col_max, A.max(axis=0) if col_max is None else col_max, out=self.col_max)
         self.n_used += A.shape[0]
         self.n_read += A.shape[0] if n_read is None else n_read
         _add_counts(self.dropped_by_column, dropped or {})
 
-    def update_block(self, block) -> None:
+    def update_block(self, block, *, overwrite: bool = False) -> None:
         """Fold a DesignBlock: its used rows, counts, ranges, weights and level counts.
 
         Prefer this to ``update``: it is where designs whose columns grow during the scan
-        (categorical levels first seen late) are aligned with the factor.
+        (categorical levels first seen late) are aligned with the factor. ``overwrite``: the
+        block's matrix is not needed afterwards and may be destroyed.
         """
         names = getattr(block, "names", None)
         if names is not None and names != self.names:
             self.expand(names)
         self.update(block.A, n_read=block.n_read, dropped=block.dropped_by_column,
-                    col_min=getattr(block, "col_min", None), col_max=getattr(block, "col_max", None))
+                    col_min=getattr(block, "col_min", None), col_max=getattr(block, "col_max", None),
+                    overwrite=overwrite)
         if getattr(block, "weight_sum", None) is not None:
             self.weight_sum = (self.weight_sum or 0.0) + block.weight_sum
             self.weight_log_sum = (self.weight_log_sum or 0.0) + block.weight_log_sum

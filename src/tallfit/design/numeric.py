@@ -51,13 +51,14 @@ def fill_matrix(
 ) -> np.ndarray:
     """Fortran-order float64 matrix of the named columns (a column of ones first if asked).
 
-    ``out`` (m × k, Fortran order) is filled instead of a new matrix: reusing buffers saves the
-    page faults of a fresh allocation per batch (≈ 20 ns per row at k = 22, measured). Float64
+    ``out`` (m × k, contiguous columns: Fortran order or a row slice of it) is filled instead of a
+    new matrix: reusing buffers saves the page faults of a fresh allocation per batch (≈ 20 ns per
+    row at k = 22, measured). Float64
     columns without nulls are read straight from Arrow's buffer, so each value is copied once.
     """
     m = batch.num_rows
     k = len(columns) + (1 if leading_ones else 0)
-    if out is not None and out.shape == (m, k) and out.flags.f_contiguous and out.dtype == np.float64:
+    if out is not None and out.shape == (m, k) and out.strides[0] == 8 and out.dtype == np.float64:
         M = out
     else:
         M = np.empty((m, k), dtype=np.float64, order="F")
@@ -91,15 +92,26 @@ def design_block(batch: pa.RecordBatch, spec: ModelSpec, out: np.ndarray | None 
     """Build [X | y] for one batch; rows with a missing or non-finite value are dropped and counted.
 
     ``out`` is an optional reusable buffer (see ``fill_matrix``); the block's matrix is then that
-    buffer, unless rows were dropped (a compacted copy).
+    buffer, unless rows were dropped (a compacted copy). The block carries each column's range:
+    one min and one max per column, which also decide whether any value is missing (NaN and
+    infinities reach the min or max), so the finiteness check costs nothing extra.
     """
     cols = spec.input_columns
     A = fill_matrix(batch, cols, spec.intercept, out=out)
     first = 1 if spec.intercept else 0
-    keep, dropped = finite_rows(A, cols, first)
-    if keep is not None:
-        A = np.asfortranarray(A[keep])
-    return DesignBlock(A=A, n_read=batch.num_rows, dropped_by_column=dropped, keep=keep)
+    if A.shape[0] == 0:
+        return DesignBlock(A=A, n_read=0)
+    lo, hi = A.min(axis=0), A.max(axis=0)
+    keep, dropped = None, {}
+    if not (np.isfinite(lo[first:]).all() and np.isfinite(hi[first:]).all()):
+        keep, dropped = finite_rows(A, cols, first)
+        if keep is not None:
+            A = np.asfortranarray(A[keep])
+            lo, hi = (A.min(axis=0), A.max(axis=0)) if A.shape[0] else (None, None)
+    block = DesignBlock(A=A, n_read=batch.num_rows, dropped_by_column=dropped, keep=keep)
+    if A.shape[0]:
+        block.col_min, block.col_max = lo, hi
+    return block
 
 
 def feature_block(batch: pa.RecordBatch, spec: ModelSpec) -> tuple[np.ndarray, np.ndarray]:

@@ -47,7 +47,13 @@ class GramAccumulator:
             if self.cm.shift is None:
                 self.cm.shift = A[: min(A.shape[0], SHIFT_ROWS), first:].mean(axis=0)
             D = A if (owned and A.flags.f_contiguous) else np.array(A, order="F")
-            shift_and_range(D, first, self.cm.shift, self.col_min, self.col_max)  # one pass, in place
+            lo, hi = getattr(block, "col_min", None), getattr(block, "col_max", None)
+            if lo is not None and hi is not None:  # the design measured the ranges already
+                np.minimum(self.col_min, lo, out=self.col_min)
+                np.maximum(self.col_max, hi, out=self.col_max)
+                D[:, first:] -= self.cm.shift
+            else:
+                shift_and_range(D, first, self.cm.shift, self.col_min, self.col_max)  # one pass, in place
             self.cm.add_shifted(D, ones_first=self.intercept)
         self.n_read += block.n_read
         for name, count in block.dropped_by_column.items():

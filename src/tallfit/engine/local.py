@@ -46,6 +46,7 @@ def design_blocks(
     unseen: str = "error",
     design: Design | None = None,
     pool=None,
+    prefetch: int = 2,
 ) -> Iterator[DesignBlock]:
     """Design blocks for every batch of the source, decoded one thread ahead of the caller.
 
@@ -56,6 +57,8 @@ def design_blocks(
     are discovered. Pass ``design`` to read its state (e.g. filtered-row counts) afterwards.
     ``pool`` (engine.parallel.BufferPool) lends reusable matrices to plain numeric designs; the
     consumer then hands each ``block.A`` back with ``pool.give`` once it is done with it.
+    ``prefetch``: blocks decoded ahead in the reader thread (0: no reader thread; the caller's
+    thread decodes, for callers that run one such loop per core).
     """
     where = source_label(source)
     design = design or Design(spec, coding=coding, unseen=unseen)
@@ -85,7 +88,7 @@ def design_blocks(
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
 
-    return prefetched(produce(), depth=2)
+    return prefetched(produce(), depth=prefetch)
 
 
 def _pooled_block(batch, spec: ModelSpec, pool) -> DesignBlock:

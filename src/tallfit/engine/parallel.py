@@ -8,9 +8,11 @@ OpenBLAS for a single thread of its own, so the library's threads do not fight o
 Two schedules:
 - one stream (a single file, or any design that must be read in order): a reader thread decodes
   and designs blocks; block i goes to folder i mod W. The split depends only on W.
-- a multi-file data set with a plain numeric design: one task per file, pulled by W workers that
-  each read and fold; the per-file accumulators are merged in file order by the same tree, so the
-  result does not depend on the number of workers at all, and only to rounding on file order.
+- a plain numeric design over several files or a Parquet file of several row groups: one task per
+  part (a file, or a run of row groups of at least SPAN_ROWS rows), pulled by W workers that each
+  read and fold, decoding on their own core; the per-part accumulators are merged in part order by
+  the same tree, so the result does not depend on the number of workers at all, and only to
+  rounding on file order.
 
 Memory stays bounded: every queue is bounded and buffers are reused (``BufferPool``).
 """
@@ -57,9 +59,13 @@ def tree_merge(items: Sequence[T], merge: Callable[[T, T], T]) -> T:
 
 
 class BufferPool:
-    """Fortran-order float64 buffers handed out by shape and given back after use (thread-safe)."""
+    """Fortran-order float64 buffers handed out by shape and given back after use (thread-safe).
 
-    def __init__(self) -> None:
+    With ``pad_rows`` each buffer is the top (m × k) of an (m + pad_rows) × k array: columns stay
+    contiguous, but their starts are no longer a power of two apart (cache-set conflicts)."""
+
+    def __init__(self, pad_rows: int = 0) -> None:
+        self.pad_rows = max(0, int(pad_rows))
         self._free: dict[tuple[int, int], list[np.ndarray]] = {}
         self._owned: set[int] = set()
         self._lock = threading.Lock()
@@ -69,7 +75,9 @@ class BufferPool:
             free = self._free.get(shape)
             if free:
                 return free.pop()
-        buf = np.empty(shape, dtype=np.float64, order="F")
+        m, k = shape
+        buf = np.empty((m + self.pad_rows, k), dtype=np.float64, order="F")[:m] if self.pad_rows else \
+            np.empty(shape, dtype=np.float64, order="F")
         with self._lock:
             self._owned.add(id(buf))
         return buf
@@ -189,27 +197,19 @@ def run_tasks(tasks: Sequence[Callable[[], T]], workers: int) -> list[T]:
     return results
 
 
-def file_sources(source) -> list | None:
-    """One single-file source per file of a multi-file Source, sharing its unified schema; else None."""
+#: Parquet files are split into runs of whole row groups of at least this many rows, so that one
+#: big file still gives every worker its own share of the decoding.
+SPAN_ROWS = 1 << 20
+
+
+def source_parts(source) -> list | None:
+    """(part, file index) pairs of a Source that has at least two parts (files or row-group runs), else None."""
     from tallfit.sources.base import Source
 
-    if type(source) is not Source or len(source.files) < 2:
+    if type(source) is not Source:
         return None
-    needed = ("_locs", "_reader", "_hint", "_part_types", "_file_columns", "_checked")
-    if not all(hasattr(source, a) for a in needed):  # pragma: no cover - another Source layout
-        return None
-    schema = source.schema
-    subs = []
-    for i, loc in enumerate(source._locs):
-        sub = Source([loc], source.format, source._reader, source._hint)
-        sub._schema = schema
-        sub._part_types = dict(source._part_types)
-        if i in source._file_columns:
-            sub._file_columns = {0: source._file_columns[i]}
-        if i in source._checked:
-            sub._checked = {0}
-        subs.append(sub)
-    return subs
+    parts = source.parts(SPAN_ROWS)
+    return parts if len(parts) >= 2 else None
 
 
 def offset_progress(progress, offset: int, lock: threading.Lock):

@@ -58,13 +58,19 @@ class TileFolder:
         self.work = np.empty(self.nb * k, dtype=np.float64)
         self._fn = _dtpqrt_pointer()
 
-    def fold(self, R: np.ndarray, rows: np.ndarray, pentagonal: int = 0) -> None:
-        """R (k × k, Fortran, upper triangle) ← factor of [R; rows]; `rows` has at most tile_rows rows."""
+    def fold(self, R: np.ndarray, rows: np.ndarray, pentagonal: int = 0, in_place: bool = False) -> None:
+        """R (k × k, Fortran, upper triangle) ← factor of [R; rows]; `rows` has at most tile_rows rows.
+
+        ``in_place``: `rows` (float64, contiguous columns) is factored where it lies and
+        overwritten, saving the copy into the tile buffer."""
         m = rows.shape[0]
         if m == 0:
             return
-        tile = self.tile[:m]
-        tile[...] = rows
+        if in_place and self._fn is not None:
+            tile, ld = rows, rows.strides[1] // 8
+        else:
+            tile, ld = self.tile[:m], self.tile_rows
+            tile[...] = rows
         if self._fn is None:  # pragma: no cover - fallback when the pointer is unavailable
             from scipy.linalg import lapack
 
@@ -72,7 +78,7 @@ class TileFolder:
             R[...] = out
         else:
             args = [_INT(v) for v in (m, self.k, pentagonal, self.nb)]
-            lda, ldb, ldt, info_c = _INT(self.k), _INT(self.tile_rows), _INT(self.nb), _INT(0)
+            lda, ldb, ldt, info_c = _INT(self.k), _INT(ld), _INT(self.nb), _INT(0)
             self._fn(
                 *(ctypes.byref(a) for a in args),
                 R.ctypes.data, ctypes.byref(lda),

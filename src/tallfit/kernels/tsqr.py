@@ -38,16 +38,18 @@ def default_tile_rows(k: int) -> int:
 
 def default_block(k: int) -> int:
     """LAPACK block size for dtpqrt: small for narrow factors (level-2 work), 32 for wide ones."""
-    return max(1, min(k, 6 if k <= 40 else 16 if k <= 160 else 32))
+    return max(1, min(k, 4 if k <= 40 else 16 if k <= 160 else 32))
 
 
-def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None) -> np.ndarray:
+def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None, *, overwrite: bool = False) -> np.ndarray:
     """Return the triangular factor of [R; A] (k × k), processing A in tiles of `tile_rows` rows.
 
     Each tile is folded by LAPACK's dtpqrt, the Householder QR of a triangle stacked on a
     rectangle, which never touches the triangle's zeros (same reflectors as dgeqrf on [R; tile]).
     R may be any k × k upper-triangular array (zeros for a fresh factor). A is (m, k) float64;
-    Fortran order is cheapest. Neither input is modified. The GIL is released while LAPACK works (see lapack_calls).
+    Fortran order is cheapest. R is not modified; A neither, unless ``overwrite``: then a float64
+    A with contiguous columns is factored where it lies (no tile copy) and left holding
+    reflectors. The GIL is released while LAPACK works (see lapack_calls).
     """
     m, k = A.shape
     if R.shape != (k, k):
@@ -59,8 +61,10 @@ def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None) -> np.
     tile_rows = default_tile_rows(k) if tile_rows is None else max(1, int(tile_rows))
     folder = _folder(k, min(tile_rows, m))
     current = np.array(np.triu(R), dtype=np.float64, order="F")
+    in_place = (overwrite and A.dtype == np.float64 and A.flags.writeable and k > 1
+                and A.strides[0] == 8 and A.strides[1] >= 8 * m)
     for start in range(0, m, tile_rows):
-        folder.fold(current, A[start : start + tile_rows])
+        folder.fold(current, A[start : start + tile_rows], in_place=in_place)
     current = np.triu(current)
     if not np.all(np.isfinite(np.diagonal(current))):
         raise FloatingPointError("non-finite value in the triangular factor")

@@ -95,6 +95,25 @@ def slices(batch: pa.RecordBatch, batch_rows: int) -> Iterator[pa.RecordBatch]:
         yield batch.slice(start, batch_rows)
 
 
+def _row_group_spans(rows: list[int], span_rows: int) -> list[tuple[int, int, int]]:
+    """(first, stop, first row) runs of consecutive row groups of at least span_rows rows each
+    (the last run takes what is left)."""
+    spans, first, start, acc, row = [], 0, 0, 0, 0
+    for g, n in enumerate(rows):
+        acc += n
+        row += n
+        if acc >= span_rows:
+            spans.append((first, g + 1, start))
+            first, start, acc = g + 1, row, 0
+    if first < len(rows):
+        if spans and acc < span_rows // 2:  # a short tail joins the run before it
+            f0, _, s0 = spans.pop()
+            spans.append((f0, len(rows), s0))
+        else:
+            spans.append((first, len(rows), start))
+    return spans
+
+
 # --------------------------------------------------------------------------- Source
 
 class Source:
@@ -111,6 +130,8 @@ class Source:
         self._file_columns: dict[int, list[str]] = {}
         self._checked: set[int] = set()              # files whose own types were compared to the schema
         self._part_types: dict[str, pa.DataType] = {}
+        self._span: tuple[int, int, int] | None = None  # (first, stop, first row): a part of one Parquet file
+        self.decode_threads = True                   # let the reader decode a batch on several threads
 
     # ---- schema
     @property
@@ -248,7 +269,14 @@ class Source:
             if prune is not None and loc.info.partition and not prune(self._partition_ranges(loc)):
                 self.pruned_files += 1
                 continue
-            extra = {"prune": prune} if prune is not None and self.format == "parquet" else {}
+            extra = {}
+            if self.format == "parquet":
+                extra["use_threads"] = self.decode_threads
+                if prune is not None:
+                    extra["prune"] = prune
+                if self._span is not None:
+                    extra["row_groups"] = self._span[:2]
+                    row = self._span[2]
             for rb in self._reader.read(loc, read_cols, types, batch_rows, check, **extra):
                 if isinstance(rb, int):  # a row group skipped by its statistics
                     row += rb
@@ -270,6 +298,32 @@ class Source:
             else:
                 arrays.append(cast_column(piece.column(c), f.type, c, where))
         return pa.RecordBatch.from_arrays(arrays, schema=out_schema)
+
+    # ---- parts, for parallel passes
+    def parts(self, span_rows: int = 0) -> list[tuple["Source", int]]:
+        """The data set as independent parts, each a Source of its own with this one's schema,
+        paired with its file's index: one part per file and, with ``span_rows`` > 0, Parquet files
+        split into runs of whole row groups of at least that many rows. The split depends on the
+        files only, so passes that merge per-part results in this order give the same answer
+        whatever the number of workers."""
+        schema = self.schema
+        out: list[tuple[Source, int]] = []
+        for i, loc in enumerate(self._locs):
+            spans = [None]
+            if span_rows > 0 and self.format == "parquet" and self._span is None:
+                spans = _row_group_spans(self._reader.row_group_rows(loc), span_rows) or [None]
+            for span in spans:
+                sub = Source([loc], self.format, self._reader, self._hint)
+                sub._schema = schema
+                sub._part_types = dict(self._part_types)
+                sub._span = span if span is not None else self._span
+                sub.decode_threads = self.decode_threads
+                if i in self._file_columns:
+                    sub._file_columns = {0: self._file_columns[i]}
+                if i in self._checked:
+                    sub._checked = {0}
+                out.append((sub, i))
+        return out
 
     def _use_engine(self, engine: str) -> None:
         """Switch the text parser ("polars", "pyarrow", "pyarrow-stream"); for benchmarks and tests."""

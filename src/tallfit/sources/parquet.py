@@ -46,23 +46,40 @@ class ParquetReader:
             except _BAD_STATUS as exc:
                 raise DataSourceError(f"{loc.path}: unreadable Parquet schema ({exc})") from None
 
+    def row_group_rows(self, loc: Located) -> list[int]:
+        """Rows of each row group, from the footer."""
+        f, pf = self._open(loc)
+        with f:
+            try:
+                meta = pf.metadata
+                return [meta.row_group(g).num_rows for g in range(meta.num_row_groups)]
+            except _BAD_STATUS as exc:
+                raise DataSourceError(f"{loc.path}: unreadable Parquet footer ({exc})") from None
+
     def read(self, loc: Located, columns: list[str], types: dict[str, pa.DataType], batch_rows: int,
-             check: Callable[[pa.Schema], None] | None, prune=None) -> Iterator[pa.RecordBatch | int]:
+             check: Callable[[pa.Schema], None] | None, prune=None, row_groups: tuple[int, int] | None = None,
+             use_threads: bool = True) -> Iterator[pa.RecordBatch | int]:
         """Batches of the file; with `prune`, row groups whose statistics rule out every row are
-        skipped and their row count is yielded as an int instead (so row offsets stay right)."""
+        skipped and their row count is yielded as an int instead (so row offsets stay right).
+
+        ``row_groups`` = (first, stop) reads only those row groups; ``use_threads`` lets pyarrow
+        decode the columns of a batch on several threads (off when the caller runs one reader per
+        core itself)."""
         f, pf = self._open(loc)
         with f:
             meta = pf.metadata
-            total = meta.num_rows
-            row = 0
-            groups = list(range(meta.num_row_groups))
+            first, stop = (0, meta.num_row_groups) if row_groups is None else row_groups
+            row = start = sum(meta.row_group(g).num_rows for g in range(first))  # rows are numbered in the file
+            total = start + sum(meta.row_group(g).num_rows for g in range(first, stop))
+            groups = list(range(first, stop))
             for g in groups:
                 if prune is not None and not prune(_row_group_ranges(meta, g)):
                     n = meta.row_group(g).num_rows
                     row += n
                     yield n
                     continue
-                batches = pf.iter_batches(batch_size=batch_rows, row_groups=[g], columns=columns, use_threads=True)
+                batches = pf.iter_batches(batch_size=batch_rows, row_groups=[g], columns=columns,
+                                          use_threads=use_threads)
                 while True:
                     try:
                         rb = next(batches)
@@ -75,8 +92,9 @@ class ParquetReader:
                     yield rb
                     row += rb.num_rows
             if row != total:
-                raise DataSourceError(f"{loc.path}: the footer promises {total:,} rows but {row:,} were read; "
-                                      f"the file is corrupt")
+                where = "" if row_groups is None else f" in row groups {first}-{stop - 1}"
+                raise DataSourceError(f"{loc.path}: the footer promises {total - start:,} rows{where} but "
+                                      f"{row - start:,} were read; the file is corrupt")
 
 
 def _row_group_ranges(meta, g: int) -> dict:
