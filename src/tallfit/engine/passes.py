@@ -85,6 +85,9 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
     if parts is not None:
         import threading
 
+        if workers is None and w > 1:
+            w += 1  # one spare: while a worker holds the GIL (Python glue, copies) another decodes
+
         lock = threading.Lock()
 
         def task(sub, file_index: int):
