@@ -198,3 +198,36 @@ def test_in_place_fold_equals_the_copying_fold():
     assert not np.array_equal(padded, A)  # it did work in place
     c = np.linalg.qr(np.vstack([R0, A]), mode="r")  # reference: numpy's Householder QR
     assert np.allclose(np.abs(a), np.abs(c), rtol=1e-12, atol=1e-12)
+
+
+def test_prefetched_in_order_keeps_the_serial_order_and_reraises():
+    from tallfit.engine.prefetch import prefetched_in_order
+
+    producers = [lambda i=i: iter(range(10 * i, 10 * i + 7)) for i in range(9)]
+    for workers in (1, 2, 3):
+        assert list(prefetched_in_order(producers, workers, depth=2)) == [10 * i + j for i in range(9) for j in range(7)]
+
+    def broken():
+        yield 1
+        raise ValueError("part 2 is unreadable")
+
+    got = []
+    with pytest.raises(ValueError, match="part 2"):
+        for item in prefetched_in_order([lambda: iter([0]), broken, lambda: iter([5])], 2):
+            got.append(item)
+    assert got == [0, 1]
+
+
+def test_design_blocks_from_parts_equal_a_serial_stream(one_file_of_many_row_groups):
+    """Row groups decoded on every core come out as the same blocks, in the same order."""
+    from tallfit.design.build import make_spec
+    from tallfit.engine.local import design_blocks
+    from tallfit.inputs import as_source
+
+    path, _ = one_file_of_many_row_groups
+    spec = make_spec("invest", FEATURES)
+    serial = list(design_blocks(as_source(path), spec, 5, prefetch=0))
+    parallel = list(design_blocks(as_source(path), spec, 5))
+    assert [(b.file_index, b.row_start, b.n_read) for b in parallel] == [(b.file_index, b.row_start, b.n_read) for b in serial]
+    assert all(np.array_equal(a.A, b.A) for a, b in zip(serial, parallel))
+    assert sum(b.n_used for b in parallel) == 220

@@ -88,7 +88,59 @@ def design_blocks(
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
 
+    parts = _ordered_parts(source, design, prefetch, skip)
+    if parts is not None:
+        return _parts_in_order(parts, spec, batch_rows, progress, read, extra_columns, coding, unseen,
+                               design, pool, prefetch)
     return prefetched(produce(), depth=prefetch)
+
+
+def _ordered_parts(source, design: Design, prefetch: int, skip) -> list | None:
+    """Row-group parts of a plain design's source for decoding on every core, or None."""
+    from tallfit.engine.parallel import source_parts, worker_count
+
+    if prefetch <= 0 or skip is not None or not design.plain or design.structured or worker_count(None) < 2:
+        return None
+    return source_parts(source, span_rows=1)
+
+
+def _parts_in_order(parts, spec, batch_rows, progress, read, extra_columns, coding, unseen, design, pool,
+                    depth) -> Iterator[DesignBlock]:
+    """design_blocks of a plain design, its parts decoded by one thread per core, in stream order.
+
+    A plain design keeps no state across batches, so each part gets a Design of its own and the
+    blocks are those of a serial pass, in the same order (SGD epochs are unchanged)."""
+    import threading
+
+    from tallfit.engine.parallel import worker_count
+    from tallfit.engine.prefetch import prefetched_in_order
+
+    lock = threading.Lock()
+    workers = worker_count(None)
+
+    def producer(sub, file_index: int):
+        def run() -> Iterator[DesignBlock]:
+            sub.decode_threads = False  # one decoding thread per core already
+            mine = Design(spec, coding=coding, unseen=unseen, predicting=design.predicting)
+            for chunk in sub.batches(read, batch_rows):
+                label = chunk_label(sub, chunk)
+                try:
+                    if pool is not None and not extra_columns:
+                        block = _pooled_block(chunk.batch, spec, pool)
+                    else:
+                        block = mine.block(chunk.batch, label, extra_columns)
+                except TallfitError:
+                    raise
+                except (pa.ArrowException, ValueError, TypeError) as exc:
+                    raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
+                block.file_index, block.row_start = file_index, chunk.row_start
+                if progress is not None:
+                    with lock:
+                        progress(chunk.batch.num_rows, file_index)
+                yield block
+        return run
+
+    return prefetched_in_order([producer(sub, i) for sub, i in parts], workers, depth=depth)
 
 
 def _pooled_block(batch, spec: ModelSpec, pool) -> DesignBlock:

@@ -202,13 +202,13 @@ def run_tasks(tasks: Sequence[Callable[[], T]], workers: int) -> list[T]:
 SPAN_ROWS = 1 << 20
 
 
-def source_parts(source) -> list | None:
+def source_parts(source, span_rows: int | None = None) -> list | None:
     """(part, file index) pairs of a Source that has at least two parts (files or row-group runs), else None."""
     from tallfit.sources.base import Source
 
     if type(source) is not Source:
         return None
-    parts = source.parts(SPAN_ROWS)
+    parts = source.parts(SPAN_ROWS if span_rows is None else span_rows)
     return parts if len(parts) >= 2 else None
 
 

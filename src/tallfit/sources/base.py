@@ -132,6 +132,7 @@ class Source:
         self._part_types: dict[str, pa.DataType] = {}
         self._span: tuple[int, int, int] | None = None  # (first, stop, first row): a part of one Parquet file
         self.decode_threads = True                   # let the reader decode a batch on several threads
+        self.is_part = False                         # made by parts(): not split again
 
     # ---- schema
     @property
@@ -306,18 +307,21 @@ class Source:
         split into runs of whole row groups of at least that many rows. The split depends on the
         files only, so passes that merge per-part results in this order give the same answer
         whatever the number of workers."""
+        if self.is_part:
+            return [(self, 0)]
         schema = self.schema
         out: list[tuple[Source, int]] = []
         for i, loc in enumerate(self._locs):
             spans = [None]
-            if span_rows > 0 and self.format == "parquet" and self._span is None:
+            if span_rows > 0 and self.format == "parquet":
                 spans = _row_group_spans(self._reader.row_group_rows(loc), span_rows) or [None]
             for span in spans:
                 sub = Source([loc], self.format, self._reader, self._hint)
                 sub._schema = schema
                 sub._part_types = dict(self._part_types)
-                sub._span = span if span is not None else self._span
+                sub._span = span
                 sub.decode_threads = self.decode_threads
+                sub.is_part = True
                 if i in self._file_columns:
                     sub._file_columns = {0: self._file_columns[i]}
                 if i in self._checked:
