@@ -4,7 +4,7 @@ Generates fleet telemetry with synthetic_gen (6 telemetry features + 14 extra = 
 zstd Parquet and as CSV in a temporary directory, fits it exactly once (the factor every iterative
 run starts from), then times, median of --repeats runs each:
 
-  scan      a bare scan of the 21 model columns through Source.batches (the floor)
+  scan      the bare scan of bench_scan.py: the 21 model columns into float64 buffers (the floor)
   design    the same pass through design_blocks with no solver work (what every pass pays)
   sgd       one SGD epoch (standardised rows, window shuffle, averaging), the solver's own code
   gd/lbfgs  one pass of loss and gradient (Problem.products at a point)
@@ -38,10 +38,11 @@ from tallfit.solve.iterative.stopping import History
 EXTRA = 14
 
 
-def bare_scan(path: Path, columns: list[str], batch_rows: int) -> None:
-    rows = 0
-    for chunk in as_source(path).batches(columns, batch_rows):
-        rows += chunk.batch.num_rows
+def bare_scan(path: Path, columns: list[str]) -> None:
+    """The floor of bench_scan.py: the file into reused float64 column-major buffers, no model."""
+    from bench_scan import scan_csv, scan_parquet
+
+    (scan_csv if path.suffix == ".csv" else scan_parquet)(str(path), columns)
 
 
 def pass_kinds(problem, monitor, passes: DesignPasses) -> dict:
@@ -85,7 +86,7 @@ def main() -> None:
             exact = tallfit.fit(path, synthetic_gen.TARGET, features, batch_rows=args.batch_rows)
             problem, monitor, _ = prepare(exact.accumulator, exact.spec, standardize=True)
             src = as_source(path)
-            scans[fmt] = median_seconds(lambda: bare_scan(path, columns, args.batch_rows), args.repeats)
+            scans[fmt] = median_seconds(lambda: bare_scan(path, columns), args.repeats)
             print(f"\n{fmt}: {path.stat().st_size / 1e6:,.0f} MB, bare scan {scans[fmt]:.2f} s "
                   f"({args.rows / scans[fmt] / 1e6:.2f} M rows/s)")
             with DesignPasses(src, exact.spec, args.batch_rows, coding=exact.coding) as passes:

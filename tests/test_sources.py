@@ -326,6 +326,10 @@ def test_missing_file_and_empty_inputs(tmp_path):
     (tmp_path / "empty" / "_SUCCESS").write_text("")
     with pytest.raises(DataSourceError, match="no data files"):
         open_source(str(tmp_path / "empty"))
+    from tallfit.inputs import as_source
+
+    with pytest.raises(DataSourceError, match="list of files is empty"):
+        as_source([])  # an empty list is not an empty stream of batches
 
 
 def test_mixed_formats_rejected(tmp_path):

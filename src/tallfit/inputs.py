@@ -19,6 +19,10 @@ def as_source(data: Any, *, format: str | None = None, delimiter: str = ","):
         return open_source(data, format=format, delimiter=delimiter)
     if isinstance(data, (list, tuple)) and data and all(isinstance(d, (str, os.PathLike)) for d in data):
         return open_source(list(data), format=format, delimiter=delimiter)
+    if isinstance(data, (list, tuple)) and not data:
+        from tallfit.errors import DataSourceError
+
+        raise DataSourceError("no data given: the list of files is empty (did a glob match nothing?)")
     if isinstance(data, pa.Table):
         table = data
         return IterableSource(lambda: table.to_batches(), name="<table>")
