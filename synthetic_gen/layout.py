@@ -9,8 +9,9 @@ from pathlib import Path
 
 from .scenario import MINUTES_PER_DAY, START
 
-SUFFIXES = {"parquet": ".parquet", "parquet-plain": ".parquet", "csv": ".csv", "jsonl": ".jsonl"}
-FILE_SUFFIXES = {".parquet": {"parquet", "parquet-plain"}, ".csv": {"csv"}, ".jsonl": {"jsonl"}, ".ndjson": {"jsonl"}}
+SUFFIXES = {"parquet": ".parquet", "parquet-plain": ".parquet", "csv": ".csv", "jsonl": ".jsonl", "ipc": ".arrow"}
+FILE_SUFFIXES = {".parquet": {"parquet", "parquet-plain"}, ".csv": {"csv"}, ".jsonl": {"jsonl"}, ".ndjson": {"jsonl"},
+                 ".arrow": {"ipc"}}
 BY_DAY_LAYOUTS = ("hive", "flat")
 TRUTH_NAME = "truth.json"
 

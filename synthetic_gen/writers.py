@@ -11,10 +11,11 @@ from typing import Iterator
 
 import polars as pl
 import pyarrow as pa
+import pyarrow.ipc  # noqa: F401  (pa.ipc)
 import pyarrow.csv as pa_csv
 import pyarrow.parquet as pq
 
-FORMATS = ("parquet", "parquet-plain", "csv", "jsonl")
+FORMATS = ("parquet", "parquet-plain", "csv", "jsonl", "ipc")
 TEXT_FORMATS = ("csv", "jsonl")
 _DICTIONARY_COLUMNS = ("ts", "day", "host_id", "rack", "region", "machine_class")
 _NO_STATISTICS = ("day", "host_id", "rack", "region", "machine_class")  # costly, and ts already orders rows
@@ -78,6 +79,25 @@ class _Jsonl:
         self._file.close()
 
 
+class _Ipc:
+    """Arrow IPC file format (uncompressed): reading it costs almost nothing, so a fit of it is
+    bound by its own arithmetic (the benchmarks' compute-bound case)."""
+
+    def __init__(self, path: Path) -> None:
+        self._path, self._sink, self._writer = path, None, None
+
+    def write(self, table: pa.Table) -> None:
+        if self._writer is None:
+            self._sink = pa.OSFile(str(self._path), "wb")
+            self._writer = pa.ipc.new_file(self._sink, table.schema)
+        self._writer.write_table(table, max_chunksize=65_536)
+
+    def close(self) -> None:
+        if self._writer is not None:
+            self._writer.close()
+            self._sink.close()
+
+
 def _sink(fmt: str, path: Path):
     if fmt == "parquet":
         return _Parquet(path, "zstd")
@@ -87,6 +107,8 @@ def _sink(fmt: str, path: Path):
         return _Csv(path)
     if fmt == "jsonl":
         return _Jsonl(path)
+    if fmt == "ipc":
+        return _Ipc(path)
     raise ValueError(f"unknown format {fmt!r}; choose one of {', '.join(FORMATS)}")
 
 
