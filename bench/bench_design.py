@@ -42,8 +42,11 @@ def write_data(path: Path, rows: int, hosts: int) -> None:
         for start in range(0, rows, chunk):
             t = synthetic_gen.generate_table(min(chunk, rows - start), seed=4, start_row=start, hosts=hosts)
             rng = np.random.default_rng(start)  # labels that vary within a host, as a job class would
-            t = t.append_column("zone", pa.array([f"z{v}" for v in range(8)]).take(pa.array(rng.integers(0, 8, t.num_rows))))
-            t = t.append_column("pod", pa.array([f"p{v:02d}" for v in range(50)]).take(pa.array(rng.integers(0, 50, t.num_rows))))
+            for name, levels in (("zone", [f"z{v}" for v in range(8)]), ("pod", [f"p{v:02d}" for v in range(50)])):
+                codes = pa.array(rng.integers(0, len(levels), t.num_rows), type=pa.int32())
+                # stored as Arrow dictionaries, like host_id (and like any categorical column
+                # written from a data frame), so they read back without materialising strings
+                t = t.append_column(name, pa.DictionaryArray.from_arrays(codes, pa.array(levels)))
             if writer is None:
                 writer = pq.ParquetWriter(tmp, t.schema, compression="zstd")
             writer.write_table(t, row_group_size=256_000)
@@ -96,7 +99,7 @@ def main() -> int:
         return 0
     folder = Path(args.dir)
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"design-{args.rows}-{args.hosts}.parquet"
+    path = folder / f"design-{args.rows}-{args.hosts}-dict.parquet"
     if not path.exists():
         t0 = time.perf_counter()
         write_data(path, args.rows, args.hosts)

@@ -63,6 +63,10 @@ def test_design_options_fit_and_show(data, capsys):
         (["--features", "cpu_util", "--missing", "cpu_util"], "COLUMN=VALUE"),
         (["--features", "cpu_util", "--missing", "cpu_util=sometimes"], "unknown missing-value policy"),
         ([], "no terms"),
+        (["--features", "cpu_util", "--categorical", "machine_class", "--drop-level", "machine_class"],
+         "COLUMN=LEVEL"),
+        (["--features", "cpu_util", "--categorical", "machine_class", "--drop-level", "machine_class=tpu-z"],
+         "cannot drop level 'tpu-z'"),
     ],
 )
 def test_bad_design_input(data, capsys, args, needle):
@@ -82,3 +86,18 @@ def test_negative_weight_names_file_and_rows(data, capsys):
     assert code == 2
     assert "fleet.parquet, rows 200-299" in err and "weight column 'w'" in err
     assert not (data / "m.json").exists()
+
+
+def test_drop_level_option_equals_the_api(data, capsys):
+    import tallfit
+
+    code, _, err = _fit(capsys, data, "--features", "cpu_util", "--categorical", "machine_class",
+                        "--reference", "machine_class=gpu-c", "--drop-level", "machine_class=storage-b",
+                        "--absorb", "rack", "--weights", "w")
+    assert code == 0, err
+    doc = json.loads(_run(capsys, "show", data / "m.json", "--json")[1])
+    direct = tallfit.fit(str(data / "fleet.parquet"), "power_w", ["cpu_util"], categorical=["machine_class"],
+                         reference={"machine_class": "gpu-c"}, drop_levels={"machine_class": ["storage-b"]},
+                         absorb="rack", weights="w")
+    assert [t["name"] for t in doc["terms"]] == direct.terms == ["cpu_util", "machine_class[compute-a]"]
+    np.testing.assert_allclose([t["estimate"] for t in doc["terms"]], direct.inference.estimate, rtol=1e-12)

@@ -19,6 +19,7 @@ from tallfit.design.coding import finalize_coding
 from tallfit.design.design import Design
 from tallfit.engine import local
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook
+from tallfit.engine.levels_pass import structured_applies, structured_pass
 from tallfit.engine.passes import apply_method_report
 from tallfit.modelfile import load_model, save_model
 from tallfit.results import FitResult
@@ -54,6 +55,7 @@ def fit(
     min_level_count: int | None = None,
     max_levels: int | None = None,
     merge_levels: dict[str, dict[str, list[str]]] | None = None,
+    drop_levels: dict[str, Sequence[str]] | None = None,
     absorb: str | None = None,
     by: Sequence[str] = (),
     solver: str = "exact",
@@ -106,6 +108,9 @@ def fit(
         rows, or beyond the most frequent ``max_levels``, are merged into one "(other)" level.
     merge_levels
         Levels merged by name before that: ``{column: {new_level: [old_level, ...]}}``.
+    drop_levels
+        Levels whose rows leave the fit, by name: ``{column: [level, ...]}``; decided after the
+        pass (the factor is recoded; equal to a fit without those rows).
     solver, solver_options
         ``"exact"`` (default), or an iterative solver (``"gd"``, ``"cg"``, ``"lbfgs"``, ``"sgd"``;
         see ``tallfit.solve.iterative``) run after the factor pass, one more pass per iteration or
@@ -133,33 +138,39 @@ def fit(
     if int(batch_rows) < 1:
         raise ValueError("batch_rows must be at least 1")
     source = as_source(data, format=format, delimiter=delimiter)
-    if absorb and (refine or solver != "exact" or weights):
+    if absorb and (refine or solver != "exact"):
         from tallfit.errors import DesignError
 
         raise DesignError(
-            "an absorbed key works with the exact solver, unweighted, without refinement passes; "
-            "drop --refine/--solver/--weights or the --absorb key"
+            "an absorbed key works with the exact solver, without refinement passes; "
+            "drop --refine/--solver or the --absorb key"
         )
-    design = Design(spec)
     if spec.by:
-        if refine or solver != "exact" or weights or absorb or robust or cluster:
+        if refine or solver != "exact" or absorb or robust or cluster:
             from tallfit.errors import DesignError
 
             raise DesignError(
-                "per-group models (--by) are fitted exactly and unweighted, without refinement, "
-                "absorbed keys or robust errors; drop those options or fit one group at a time"
+                "per-group models (--by) are fitted exactly, without refinement, absorbed keys or "
+                "robust errors; drop those options or fit one group at a time"
             )
-        return fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol,
-                             conf_level, reference, min_level_count, max_levels, merge_levels)
-    raw = local.accumulate(source, spec, batch_rows, progress, design=design, workers=workers, method=method)
+        return fit_by_group(source, spec, Design(spec), batch_rows, progress, drop_aliased, rank_tol,
+                             conf_level, reference, min_level_count, max_levels, merge_levels, drop_levels)
+    structured = method == "qr" and structured_applies(spec)
+    if structured:  # level statistics instead of dense indicator columns (engine/levels_pass.py)
+        design = Design(spec, structured=True)
+        raw = structured_pass(source, spec, batch_rows, progress, design)
+    else:
+        design = Design(spec)
+        raw = local.accumulate(source, spec, batch_rows, progress, design=design, workers=workers, method=method)
     absorber = raw if spec.absorb else None
     acc = absorber.inner if absorber else raw
-    acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels)
+    acc, coding, T = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels,
+                                     drop_levels)
     notes = [
         f"categorical column {c!r} has more than {WIDE_LEVELS} levels as dense indicator columns; "
         "a key of that many values is better absorbed (fixed effects) than expanded"
         for c in design.wide_categoricals()
-    ]
+    ] if not structured else []
     options = {
         "min_level_count": min_level_count,
         "max_levels": max_levels,
@@ -289,6 +300,7 @@ def validate(
     weight_kind: str = "analytic",
     absorb: str | None = None,
     by: Sequence[str] = (),
+    drop_levels: dict[str, Sequence[str]] | None = None,
 ):
     """Fit on the training rows and measure prediction error on rows not fitted, in one pass.
 
@@ -307,7 +319,8 @@ def validate(
     from tallfit.errors import DesignError
     from tallfit.validation import build_validation, full_coef
 
-    unsupported = [name for name, v in (("weights", weights), ("absorb", absorb), ("by", by)) if v]
+    unsupported = [name for name, v in (("weights", weights), ("absorb", absorb), ("by", by),
+                                        ("drop_levels", drop_levels)) if v]
     if unsupported:
         raise DesignError(
             f"validation does not take {', '.join(unsupported)} yet; validate the unweighted model "

@@ -32,7 +32,7 @@ def with_robust(result: FitResult, source, robust, cluster, batch_rows, progress
 
 
 def fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_tol, conf_level,
-                  reference, min_level_count, max_levels, merge_levels=None):
+                  reference, min_level_count, max_levels, merge_levels=None, drop_levels=None):
     """One model per value of the ``by`` columns, from one pass (see tallfit.grouped)."""
     from tallfit.grouped import fit_groups
 
@@ -40,7 +40,8 @@ def fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_
                "rank_tol": float(rank_tol), "conf_level": float(conf_level)}
 
     def finalize(acc):
-        acc, coding, _ = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels)
+        acc, coding, _ = finalize_coding(acc, spec, reference, min_level_count, max_levels, merge_levels,
+                                         drop_levels)
         return fit_from_accumulator(spec, acc, on_aliased="drop" if drop_aliased else "error",
                                     rank_tol=rank_tol, conf_level=conf_level, coding=coding, options=options)
 
@@ -54,7 +55,8 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
     """Store the absorbed level effects α_g = ȳ_g − x̄_gᵀβ in the model's coding (for prediction)."""
     import numpy as np
 
-    means = absorber.means @ T if T is not None else absorber.means
+    raw_means = absorber.raw_means()
+    means = raw_means @ T if T is not None else raw_means
     acc = result.accumulator
     keep = [acc.names.index(t) for t in result.terms]
     alpha = means[:, -1] - means[:, keep] @ result.inference.estimate

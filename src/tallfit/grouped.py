@@ -114,6 +114,7 @@ class GroupAccumulators:
         self.null_rows += int(nulls.sum())
         dictionary = enc.dictionary.to_pylist()
         codes = np.where(nulls, -1, idx).astype(np.int64)
+        weights = getattr(block, "row_weights", None)
         order = np.argsort(codes, kind="stable")
         sorted_codes = codes[order]
         bounds = np.flatnonzero(np.diff(sorted_codes)) + 1
@@ -127,8 +128,13 @@ class GroupAccumulators:
                 self._check_budget(len(names))
             if acc.names != names:
                 acc.expand(names)
-            A = np.asfortranarray(block.A[np.sort(part)])
+            rows = np.sort(part)
+            A = np.asfortranarray(block.A[rows])
             acc.update(A, n_read=A.shape[0])
+            if weights is not None:  # rows are already scaled by √w; the sums serve the df
+                wk = weights[rows]
+                acc.weight_sum = (acc.weight_sum or 0.0) + float(wk.sum())
+                acc.weight_log_sum = (acc.weight_log_sum or 0.0) + float(np.log(wk).sum())
         self.n_read += block.n_read
         self.n_used += block.A.shape[0]
         for name, count in block.dropped_by_column.items():

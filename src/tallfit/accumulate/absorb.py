@@ -1,95 +1,236 @@
 """Absorbing a high-cardinality key: the within (fixed-effects) estimator in one streamed pass.
 
-Per level g of the key we keep the row count n_g and the mean vector m_g of [X | y]; the
-pooled within-level co-moment is kept in the stable form, as the triangular factor of the
-within-level centred rows. A batch is merged in with the pairwise formulas of Chan, Golub &
-LeVeque (The American Statistician 37, 1983): its rows are centred on their batch-level means
-and folded in, and for a level seen before one extra row √(n_a n_b / (n_a + n_b))·(m_b − m_a)
-carries the shift of its mean, so the factor equals that of the rows centred on their final
-level means, exactly. Memory is O(levels × columns). By Frisch–Waugh–Lovell the slopes from
-this factor equal those of a fit with one indicator per level; residual degrees of freedom are
-n − G − p.
+Per level g of the key we keep the weight sum W_g (the row count, unweighted) and the mean vector
+m_g of Z = [X | y]; the pooled within-level co-moment is kept in the stable form, as the
+triangular factor of the within-level centred rows. Rows are merged one at a time with the
+pairwise formulas of Chan, Golub & LeVeque (The American Statistician 37, 1983) written as QR
+rows: a row of a level seen before contributes √(W_g w/(W_g + w))·(z − m_g) and moves m_g, so the
+factor equals that of the rows centred on their final level means, exactly (kernels/groups.py:
+within_rows). Memory is O(levels × columns). By Frisch–Waugh–Lovell the slopes from this factor
+equal those of a fit with one indicator per level; residual degrees of freedom are n − G − p.
+
+Categorical columns beside the key are not folded as dense indicator columns (whose centred
+values are dense): their within-key moments follow from per-(key level, indicator) weight sums,
+indicator cross sums and shifted sums of Z (kernels/groups.py: level_moments), and enter the
+factor through its Schur complement (:meth:`AbsorbAccumulator.raw_factor`); X keeps its QR.
 """
 
 from __future__ import annotations
 
 import numpy as np
+from scipy.linalg import qr, solve_triangular
 
 from tallfit.accumulate.factor import FactorAccumulator
+from tallfit.accumulate.onehot import count_block, grow_rows
 from tallfit.design.categorical import LevelCoder
-from tallfit.kernels.groups import centre_rows, group_means, merge_means
+from tallfit.design.spec import indicator_name
+from tallfit.kernels.groups import within_rows, within_rows_levels
 from tallfit.kernels.tsqr import fold_rows
 
 
-class AbsorbAccumulator:
-    """Within-level factor (as a FactorAccumulator over [X | y], no intercept) plus level stats."""
+def psd_factor(S: np.ndarray) -> np.ndarray:
+    """An upper-triangular R with R'R = S for a symmetric positive semi-definite S (singular
+    allowed, as for the indicators of every level): triu(qr(Λ^½ Vᵀ)) from S = V Λ Vᵀ."""
+    lam, V = np.linalg.eigh((S + S.T) / 2)
+    B = np.sqrt(np.clip(lam, 0.0, None))[:, None] * V.T
+    return np.triu(qr(B, mode="r")[0])
 
-    def __init__(self, column: str, names: list[str]) -> None:
+
+class AbsorbAccumulator:
+    """Within-level factor of Z plus level statistics (and indicator moments, if categorical)."""
+
+    def __init__(self, column: str, names: list[str], coders=None, spec=None) -> None:
         self.column = column
-        self.inner = FactorAccumulator.create(names)
+        self.W = FactorAccumulator.create(names)  # within factor of Z, with the block bookkeeping
         self.coder = LevelCoder(column)
-        self.counts = np.zeros(0)
-        self.means = np.zeros((0, len(names)), order="F")  # levels × columns, column-major
+        self.coders = list(coders or [])  # categorical columns beside the key (structured blocks)
+        self.spec = spec
+        k = len(names)
+        self.state = np.zeros((0, 1 + 2 * k))  # per key level: [W_g, mean (k), shift (k)]
+        self._out = np.zeros((0, k), order="F")
+        if self.coders:
+            self.global_of = [np.zeros(0, np.int64) for _ in self.coders]  # level code → moment index
+            self.members: list[tuple[int, int]] = []  # moment index → (column, level code)
+            self.key_level = np.zeros((0, 0))  # key levels × indicators: weight sums
+            self.cross = np.zeros((0, 0))
+            self.sums = np.zeros((0, k))
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Weight sum (rows, unweighted) of each key level (by id; capacity-sized)."""
+        return self.state[:, 0]
+
+    @property
+    def means(self) -> np.ndarray:
+        """Means of Z per key level (levels × k; capacity-sized)."""
+        k = self.W.k
+        return self.state[:, 1:1 + k]
+
+    @property
+    def shift(self) -> np.ndarray:
+        k = self.W.k
+        return self.state[:, 1 + k:]
 
     @property
     def n_levels(self) -> int:
         return int(np.count_nonzero(self.counts))
 
-    def _grow(self, k: int) -> None:
-        G = self.coder.n_columns
-        if self.means.shape[1] < k:  # design columns added while streaming (zero so far)
-            pad = np.zeros((self.means.shape[0], k - self.means.shape[1]))
-            self.means = np.asfortranarray(np.hstack([self.means[:, :-1], pad, self.means[:, -1:]]))
-        if G > self.counts.size:  # grow by half again at least, so copies stay amortised O(G)
-            extra = max(G - self.counts.size, self.counts.size // 2)
-            self.counts = np.concatenate([self.counts, np.zeros(extra)])
-            self.means = np.asfortranarray(np.vstack([self.means, np.zeros((extra, self.means.shape[1]))]))
+    @property
+    def inner(self) -> FactorAccumulator:
+        """The factor accumulator of the design with the key swept out (target last)."""
+        return self.raw_factor() if self.coders else self.W
+
+    def _grow_columns(self, names: list[str]) -> None:
+        """Dense blocks whose columns grew (levels first seen late): zero columns so far."""
+        if names == self.W.names:
+            return
+        k_old = self.W.k
+        self.W.expand(names)
+        add = len(names) - k_old
+        if add > 0:  # means of the new columns are zero so far (shift unused on this path)
+            st = self.state
+            z = np.zeros((st.shape[0], add))
+            self.state = np.hstack([st[:, :k_old], z, st[:, k_old:k_old + 1], np.zeros((st.shape[0], len(names)))])
 
     def update_block(self, block, key_values, label: str) -> None:
         names = getattr(block, "names", None)
-        if names is not None and names != self.inner.names:
-            self.inner.expand(names)
+        if names is not None and not self.coders:
+            self._grow_columns(names)
         A = block.A
-        k = A.shape[1]
+        m, k = A.shape
         codes = self.coder.codes(key_values, label)
-        self._grow(k)
-        if A.shape[0]:
-            present, inv = np.unique(codes, return_inverse=True)
-            nb, mb = group_means(A, inv.astype(np.int64), present.size)
-            R = fold_rows(self.inner.R, centre_rows(A, mb, inv))  # rows centred on their batch means
-            na = self.counts[present].astype(np.float64)
-            seen = na > 0
-            if seen.any():  # the Chan–Golub–LeVeque correction row of each level seen before
-                scale = np.sqrt(na[seen] * nb[seen] / (na[seen] + nb[seen]))
-                shift = (mb[seen] - self.means[present[seen]]) * scale[:, None]
-                R = fold_rows(R, np.asfortranarray(shift))
-            self.inner.R = R
-            merge_means(self.means, self.counts, present.astype(np.int64), mb, nb)
-        # counts, ranges and drops as for any factor (the rows themselves were folded above)
-        self.inner.update(np.zeros((0, k)), n_read=block.n_read, dropped=block.dropped_by_column)
-        self.inner.n_used += A.shape[0]
-        if A.shape[0]:
-            np.minimum(self.inner.col_min, A.min(axis=0), out=self.inner.col_min)
-            np.maximum(self.inner.col_max, A.max(axis=0), out=self.inner.col_max)
-        for col, counts in (getattr(block, "level_counts", None) or {}).items():
-            d = self.inner.level_counts.setdefault(col, {})
-            for lvl, c in counts.items():
-                d[lvl] = d.get(lvl, 0) + c
+        G = self.coder.n_columns
+        self.state = grow_rows(self.state, G)
+        w = getattr(block, "row_weights", None)
+        if w is not None and not hasattr(block, "codes"):  # a dense block, rows scaled by √w
+            A = np.asfortranarray(A / np.sqrt(w)[:, None])
+        w = np.zeros(0) if w is None else w
+        if m:
+            if self._out.shape[0] < m or self._out.shape[1] != k:
+                self._out = np.zeros((m, k), order="F")
+            if self.coders:
+                cols, L = self._moment_columns(block.codes, G)
+                r = within_rows_levels(A, codes, cols, w, self.state, self.key_level, self.cross, self.sums,
+                                       self._out)
+            else:
+                r = within_rows(A, codes, w, self.state[:, 0], self.state[:, 1:1 + k], self._out)
+            if r:
+                self.W.R = fold_rows(self.W.R, self._out[:r])
+        count_block(self.W, block)
+
+    def _moment_columns(self, level_codes, G):
+        """Moment index of each row's level per categorical column (new levels numbered on first
+        sight), with the moment arrays grown to fit; returns (rows × columns, number of levels)."""
+        cols = np.empty((level_codes[0].shape[0], len(self.coders)), dtype=np.int64)
+        for c, lc in enumerate(level_codes):
+            g = self.global_of[c]
+            n_lev = self.coders[c].n_columns
+            if g.size < n_lev:
+                g = self.global_of[c] = np.concatenate([g, np.full(n_lev - g.size, -1, np.int64)])
+            for code in np.unique(lc[g[lc] < 0]):
+                g[code] = len(self.members)
+                self.members.append((c, int(code)))
+            cols[:, c] = g[lc]
+        L = len(self.members)
+        rows, width = self.key_level.shape
+        if rows < G or width < L:
+            rows = rows if rows >= G else max(G, 2 * rows, 16)
+            width = width if width >= L else max(L, 2 * width, 8)
+            grown = np.zeros((rows, width))
+            grown[: self.key_level.shape[0], : self.key_level.shape[1]] = self.key_level
+            self.key_level = grown
+        if self.cross.shape[0] < width:
+            grown = np.zeros((width, width))
+            grown[: self.cross.shape[0], : self.cross.shape[1]] = self.cross
+            self.cross = grown
+            self.sums = grow_rows(self.sums, width)
+        return cols, L
+
+    # -- after the pass ------------------------------------------------------------------------
+    def raw_names(self) -> list[str]:
+        z = self.W.names
+        cat = [indicator_name(coder.column, lvl) for coder in self.coders for lvl in coder.index]
+        return z[:-1] + cat + [z[-1]]
+
+    def _indicator_positions(self) -> np.ndarray:
+        """Column (among the indicators, in the dense design's order) of each moment index."""
+        first, off = [], 0
+        for coder in self.coders:
+            first.append(off)
+            off += coder.n_columns
+        return np.array([first[c] + code for c, code in self.members], dtype=np.int64)
+
+    def raw_factor(self) -> FactorAccumulator:
+        """The within factor of the dense design [X | D | y] (D every level's indicator), from the
+        QR factor of the within-centred Z and the Schur complement of the indicator moments."""
+        G = self.coder.n_columns
+        L = len(self.members)
+        names = self.raw_names()
+        k = self.W.k
+        p = k - 1
+        n_ind = len(names) - k
+        Wt = self.counts[:G]
+        C = np.ascontiguousarray(self.key_level[:G, :L])
+        B = C / np.sqrt(np.where(Wt > 0, Wt, 1.0))[:, None]  # rows c_g/√W_g (zero for unseen g)
+        cross = np.triu(self.cross[:L, :L])
+        S_DD = cross + np.triu(cross, 1).T - B.T @ B
+        S_DZ = self.sums[:L] - C.T @ (self.means[:G] - self.shift[:G])
+        pos = self._indicator_positions()
+        full_DD = np.zeros((n_ind, n_ind))
+        full_DD[np.ix_(pos, pos)] = S_DD
+        full_DZ = np.zeros((n_ind, k))
+        full_DZ[pos] = S_DZ
+        Rz = self.W.R
+        R11, r1y, rho = Rz[:p, :p], Rz[:p, p], Rz[p, p]
+        S_XD = full_DZ[:, :p].T
+        diag = np.abs(np.diag(R11))
+        if p and diag.min() > 1e-300 * max(1.0, diag.max()):
+            R12 = solve_triangular(R11, S_XD, trans="T")
+        else:  # aliased X: the generalised Schur complement (min-norm solution)
+            R12 = np.linalg.lstsq(R11.T, S_XD, rcond=None)[0] if p else np.zeros((0, n_ind))
+        F = np.zeros((n_ind + 1, n_ind + 1))
+        F[:n_ind, :n_ind] = full_DD - R12.T @ R12
+        F[:n_ind, n_ind] = F[n_ind, :n_ind] = full_DZ[:, p] - R12.T @ r1y
+        F[n_ind, n_ind] = rho**2
+        RF = psd_factor(F)
+        K = len(names)
+        R = np.zeros((K, K))
+        R[:p, :p] = R11
+        R[:p, p:p + n_ind] = R12
+        R[:p, -1] = r1y
+        R[p:, p:] = RF
+        acc = self.W
+        lo = np.concatenate([acc.col_min[:-1], np.zeros(n_ind), acc.col_min[-1:]])
+        hi = np.concatenate([acc.col_max[:-1], np.ones(n_ind), acc.col_max[-1:]])
+        return FactorAccumulator(
+            names=names, R=R, n_read=acc.n_read, n_used=acc.n_used,
+            dropped_by_column=dict(acc.dropped_by_column), col_min=lo, col_max=hi,
+            weight_sum=acc.weight_sum, weight_log_sum=acc.weight_log_sum,
+            level_counts={c: dict(v) for c, v in acc.level_counts.items()}, filled=dict(acc.filled),
+        )
+
+    def raw_means(self) -> np.ndarray:
+        """Level means of every column of the design ``inner`` describes (levels × columns)."""
+        G = self.coder.n_columns
+        if not self.coders:
+            return self.means[:G]
+        k = self.W.k
+        n_ind = len(self.raw_names()) - k
+        out = np.zeros((G, k + n_ind))
+        out[:, : k - 1] = self.means[:G, :-1]
+        out[:, -1] = self.means[:G, -1]
+        Wt = np.where(self.counts[:G] > 0, self.counts[:G], 1.0)
+        out[:, (k - 1) + self._indicator_positions()] = self.key_level[:G, : len(self.members)] / Wt[:, None]
+        return out
 
     def levels(self) -> list[str]:
         return list(self.coder.index)
 
     def total_ss(self) -> float:
-        """Σ (y − ȳ)² over all used rows: within part (from the factor) plus between part."""
-        R = self.inner.R
-        within = float(np.sum(R[:, -1] ** 2))
-        n = self.counts.astype(np.float64)
-        ybar = float(np.sum(n * self.means[:, -1]) / n.sum())
-        between = float(np.sum(n * (self.means[:, -1] - ybar) ** 2))
+        """Σ w (y − ȳ)² over all used rows: within part (from the factor) plus between part."""
+        G = self.coder.n_columns
+        within = float(np.sum(self.W.R[:, -1] ** 2))
+        n = self.counts[:G]
+        ybar = float(np.sum(n * self.means[:G, -1]) / n.sum())
+        between = float(np.sum(n * (self.means[:G, -1] - ybar) ** 2))
         return within + between
-
-    def effects(self, beta: np.ndarray, keep: list[int]) -> dict[str, float]:
-        """Level effects α_g = ȳ_g − x̄_gᵀβ (the absorbed coefficients)."""
-        X = self.means[:, keep]
-        alpha = self.means[:, -1] - X @ beta
-        return {lvl: float(alpha[i]) for lvl, i in self.coder.index.items() if self.counts[i] > 0}

@@ -99,21 +99,23 @@ class FactorAccumulator:
 
     # -- column growth and recoding ---------------------------------------------------------
     def expand(self, names: list[str]) -> None:
-        """Append the columns of `names` not yet present (before the target), as zero columns."""
+        """Insert the columns of `names` not yet present, as zero columns (exact: they were zero
+        for every row so far). The old columns must keep their order, the target staying last;
+        new ones may come anywhere before it (levels of an earlier categorical column found late)."""
         old = self.names
-        if names[: len(old) - 1] != old[:-1] or names[-1] != old[-1]:
-            raise ValueError("expand needs the new names to extend the old ones before the target")
-        k_old, k_new = len(old), len(names)
-        if k_new == k_old:
+        if names == old:
             return
+        index = {n: i for i, n in enumerate(names)}
+        pos = [index.get(n, -1) for n in old]
+        if names[-1] != old[-1] or -1 in pos or any(b <= a for a, b in zip(pos, pos[1:])):
+            raise ValueError("expand needs the new names to keep the old ones in order, target last")
+        k_new = len(names)
         R = np.zeros((k_new, k_new))
-        R[: k_old - 1, : k_old - 1] = self.R[: k_old - 1, : k_old - 1]
-        R[: k_old - 1, -1] = self.R[: k_old - 1, -1]
-        R[-1, -1] = self.R[-1, -1]
+        R[np.ix_(pos, pos)] = self.R
         self.R = R
-        grow = k_new - k_old
-        self.col_min = np.concatenate([self.col_min[:-1], np.full(grow, np.inf), self.col_min[-1:]])
-        self.col_max = np.concatenate([self.col_max[:-1], np.full(grow, -np.inf), self.col_max[-1:]])
+        lo, hi = np.full(k_new, np.inf), np.full(k_new, -np.inf)
+        lo[pos], hi[pos] = self.col_min, self.col_max
+        self.col_min, self.col_max = lo, hi
         self.names = list(names)
 
     def recoded(self, T: np.ndarray, names: list[str]) -> "FactorAccumulator":

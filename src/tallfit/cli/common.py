@@ -59,6 +59,17 @@ def _merges(values: list[str]) -> dict[str, dict[str, list[str]]]:
     return out
 
 
+def _drops(values: list[str]) -> dict[str, list[str]]:
+    out: dict[str, list[str]] = {}
+    for v in values:
+        col, sep, rest = v.partition("=")
+        levels = [lv.strip() for lv in rest.split("+") if lv.strip()]
+        if not (sep and col.strip() and levels):
+            raise DesignError(f"--drop-level expects COLUMN=LEVEL or COLUMN=LEVEL+LEVEL, got {v!r}")
+        out.setdefault(col.strip(), []).extend(levels)
+    return out
+
+
 def add_design_options(p: argparse.ArgumentParser) -> None:
     """Options that shape the design matrix (shared by every command that fits)."""
     g = p.add_argument_group("design terms")
@@ -67,6 +78,7 @@ def add_design_options(p: argparse.ArgumentParser) -> None:
     g.add_argument("--min-level-rows", type=int, default=None, metavar="N", help="merge levels with fewer rows than N into one '(other)' level")
     g.add_argument("--max-levels", type=int, default=None, metavar="K", help="keep the K most frequent levels of each categorical column, merge the rest")
     g.add_argument("--merge-levels", action="append", default=[], metavar="COL:NEW=OLD+OLD", help="merge named levels of a categorical column into one, e.g. 'region:north=north-1+north-2' (repeatable)")
+    g.add_argument("--drop-level", action="append", default=[], metavar="COL=LEVEL[+LEVEL]", help="drop the indicator column of named levels after the pass, so their rows count as the reference level, e.g. 'region=east-3' (repeatable)")
     g.add_argument("--derive", action="append", default=[], metavar="'NAME = EXPR'", help="a derived feature as an SQL expression, e.g. 'log_iops = ln(disk_iops + 1)' (repeatable)")
     g.add_argument("--interactions", type=split_list, default=[], metavar="COLS", help="add all pairwise products of these columns as features")
     g.add_argument("--poly", action="append", default=[], metavar="COL=DEGREE", help="add powers 2..DEGREE of a column as features (repeatable)")
@@ -86,7 +98,7 @@ def design_kwargs(args) -> dict:
             poly[col] = int(deg)
         except ValueError:
             raise DesignError(f"--poly {col}={deg}: the degree must be a whole number") from None
-    return {
+    out = {
         "categorical": args.categorical,
         "reference": _pairs(args.reference, "--reference") or None,
         "min_level_count": args.min_level_rows,
@@ -102,3 +114,7 @@ def design_kwargs(args) -> dict:
         "absorb": args.absorb,
         "by": args.by,
     }
+    drops = _drops(getattr(args, "drop_level", []))
+    if drops:
+        out["drop_levels"] = drops
+    return out

@@ -15,6 +15,7 @@ import pyarrow.compute as pc
 
 from tallfit.design.spec import indicator_name
 from tallfit.errors import DesignError
+from tallfit.kernels.groups import int_ids, rehash_ints, rehash_strings, string_ids
 
 UNSEEN_POLICIES = ("error", "reference", "other")
 MISSING_LEVEL = "(missing)"
@@ -45,6 +46,72 @@ def level_strings(arr: pa.Array) -> pa.Array:
     raise DesignError(f"a column of type {t} cannot be categorical (use strings, integers or booleans)")
 
 
+def _pow2(n: int) -> int:
+    return 1 << max(4, int(n - 1).bit_length())
+
+
+class StringTable:
+    """Labels → dense ids in order of discovery (a numba hash table: no Python loop per label)."""
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.used = 0
+        self.key_off = np.zeros(17, dtype=np.int64)
+        self.key_data = np.zeros(64, dtype=np.uint8)
+        self.table = np.full(32, -1, dtype=np.int64)
+
+    def ids(self, strings: pa.Array) -> np.ndarray:
+        """Id of every entry of a string array without nulls (new labels get the next ids)."""
+        d = len(strings)
+        bufs = strings.buffers()
+        wide = pa.types.is_large_string(strings.type)
+        off = np.frombuffer(bufs[1], dtype=np.int64 if wide else np.int32)[strings.offset: strings.offset + d + 1]
+        data = np.frombuffer(bufs[2], dtype=np.uint8) if bufs[2] is not None else np.zeros(0, np.uint8)
+        nbytes = int(off[-1] - off[0]) if d else 0
+        if self.key_off.size < self.n + d + 1:
+            self.key_off = np.concatenate([self.key_off, np.zeros(max(d + 1, self.key_off.size), np.int64)])
+        if self.key_data.size < self.used + nbytes:
+            self.key_data = np.concatenate([self.key_data, np.zeros(max(nbytes, self.key_data.size), np.uint8)])
+        if self.table.size < 2 * (self.n + d):
+            self.table = rehash_strings(self.key_off, self.key_data, self.n, _pow2(4 * (self.n + d)))
+        ids, self.n, self.used = string_ids(off.astype(np.int64), data, self.key_off, self.key_data,
+                                            self.table, self.n, self.used)
+        return ids
+
+
+class IntTable:
+    """Non-negative int64 keys → dense ids in order of discovery (numba hash table)."""
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.keys = np.zeros(16, dtype=np.int64)
+        self.table = np.full(32, -1, dtype=np.int64)
+
+    def ids(self, values: np.ndarray) -> np.ndarray:
+        m = values.shape[0]
+        if self.keys.size < self.n + m:
+            self.keys = np.concatenate([self.keys, np.zeros(max(m, self.keys.size), np.int64)])
+        if self.table.size < 2 * (self.n + m):
+            self.table = rehash_ints(self.keys, self.n, _pow2(4 * (self.n + m)))
+        ids, self.n = int_ids(np.ascontiguousarray(values, dtype=np.int64), self.keys, self.table, self.n)
+        return ids
+
+
+def _dictionary_parts(arr) -> tuple[pa.Array, pa.Array] | None:
+    """(dictionary, indices) of a string or string-dictionary column, or None for other types."""
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    t = arr.type
+    if pa.types.is_dictionary(t):
+        if not (pa.types.is_string(t.value_type) or pa.types.is_large_string(t.value_type)):
+            return None
+        return arr.dictionary, arr.indices
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        enc = pc.dictionary_encode(arr)
+        return enc.dictionary, enc.indices
+    return None
+
+
 class LevelCoder:
     """Maps the levels of one column to indicator columns and counts the rows of each level."""
 
@@ -62,6 +129,8 @@ class LevelCoder:
         self.unseen_levels: dict[str, int] = {}
         self._value_set: pa.Array | None = None
         self._value_cols: np.ndarray | None = None
+        self._table: StringTable | None = None
+        self._last: tuple[pa.Array, np.ndarray] | None = None  # a batch dictionary and its columns
 
     @property
     def names(self) -> list[str]:
@@ -70,6 +139,10 @@ class LevelCoder:
 
     def codes(self, arr: pa.Array, label: str) -> np.ndarray:
         """Column index per row; -1 for the reference level (all zeros), -2 for a null."""
+        if self.discover:
+            fast = self._discovered_codes(arr)
+            if fast is not None:
+                return fast
         strings = level_strings(arr)
         enc = pc.dictionary_encode(strings)
         if isinstance(enc, pa.ChunkedArray):
@@ -83,6 +156,36 @@ class LevelCoder:
             self.unseen_rows += int(bad.sum())
             codes = np.where(bad, self.other if (self.unseen == "other" and self.other is not None) else -1, codes)
         return codes
+
+    def _discovered_codes(self, arr) -> np.ndarray | None:
+        """Discovery mode for labels: the batch's dictionary (from Parquet, or encoded here) is
+        mapped once to columns through a hash table, and rows take their column by index; a batch
+        with the same dictionary as the one before reuses its map. None for other column types."""
+        parts = _dictionary_parts(arr)
+        if parts is None:
+            return None
+        dictionary, indices = parts
+        if dictionary.null_count:
+            return None
+        if self._table is None:
+            if self.index:  # levels found by the general path first: keep their columns
+                return None
+            self._table = StringTable()
+        if self._last is not None and self._last[0].equals(dictionary):
+            cols = self._last[1]
+        else:
+            before = self._table.n
+            ids = self._table.ids(dictionary)
+            new = np.flatnonzero(ids >= before)
+            if new.size:
+                for i, level in zip(ids[new], dictionary.take(pa.array(new)).to_pylist()):
+                    self.index[level] = int(i)
+                self.n_columns = self._table.n
+            cols = np.append(ids, -2)  # nulls index the last slot
+            self._last = (dictionary, cols)
+        if indices.null_count:
+            indices = indices.fill_null(len(dictionary))
+        return cols[indices.to_numpy(zero_copy_only=False)]
 
     def _known_columns(self, dictionary: pa.Array, label: str) -> np.ndarray:
         """Column of each entry of a batch's level dictionary: known levels by one hash lookup in

@@ -35,7 +35,7 @@ def _named_groups(col: str, seen: dict[str, int], merges: dict[str, list[str]] |
 
 def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_count: int | None,
                  max_levels: int | None, needs_reference: bool,
-                 merges: dict[str, list[str]] | None = None) -> dict:
+                 merges: dict[str, list[str]] | None = None, drops: list[str] | None = None) -> dict:
     raw = {lvl: n for lvl, n in counts.items() if n > 0}
     if not raw:
         raise DesignError(f"categorical column {col!r} has no level with usable rows")
@@ -43,6 +43,19 @@ def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_co
     seen: dict[str, int] = {}
     for lvl, n in raw.items():
         seen[alias[lvl]] = seen.get(alias[lvl], 0) + n
+    dropped = sorted(set(drops or ()))
+    for lvl in dropped:
+        if lvl not in seen:
+            raise DesignError(
+                f"cannot drop level {lvl!r} of {col!r}: it is not among its levels "
+                f"({', '.join(sorted(seen)[:10])})"
+            )
+        if lvl == reference:
+            raise DesignError(f"level {lvl!r} of {col!r} is both the reference and dropped; choose one")
+    reported = dict(seen)
+    dropped_rows = sum(seen.pop(lvl) for lvl in dropped)
+    if dropped and not seen:
+        raise DesignError(f"dropping {', '.join(dropped)} leaves no level of {col!r}")
     ranked = sorted(seen, key=lambda lvl: (-seen[lvl], lvl))
     merged = set()
     if min_count:
@@ -71,6 +84,8 @@ def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_co
         reference = max(groups, key=lambda g: (groups[g], g != OTHER, g))  # most frequent
     if not needs_reference:
         reference = None
+    if dropped and reference is not None:
+        groups[reference] += dropped_rows  # a dropped level's rows join the reference level
     columns = sorted(g for g in groups if g != reference and g != OTHER)
     if OTHER in groups and reference != OTHER:
         columns.append(OTHER)
@@ -78,15 +93,16 @@ def _plan_column(col: str, counts: dict[str, int], reference: str | None, min_co
     column_of = {}
     for lvl in raw:
         group = OTHER if alias[lvl] in merged else alias[lvl]
-        column_of[lvl] = offset.get(group, -1)
+        column_of[lvl] = -1 if group in dropped else offset.get(group, -1)
     return {
         "columns": columns,
         "column_of": column_of,
         "reference": reference,
         "merged": sorted(merged),
         "merged_by_name": {new: sorted(olds) for new, olds in (merges or {}).items()},
+        "dropped": dropped,
         "other_column": offset.get(OTHER),
-        "counts": dict(sorted(seen.items(), key=lambda kv: (-kv[1], kv[0]))),
+        "counts": dict(sorted(reported.items(), key=lambda kv: (-kv[1], kv[0]))),
     }
 
 
@@ -97,12 +113,18 @@ def finalize_coding(
     min_count: int | None = None,
     max_levels: int | None = None,
     merges: dict[str, dict[str, list[str]]] | None = None,
+    drops: dict[str, list[str]] | None = None,
 ) -> tuple[FactorAccumulator, dict | None, np.ndarray | None]:
-    """Recode the factor to the final categorical coding: (new accumulator, coding, map T)."""
+    """Recode the factor to the final categorical coding: (new accumulator, coding, map T).
+
+    ``drops``: levels whose indicator column is dropped, so their rows count as the reference
+    level (without a reference level: as no level)."""
     if not spec.categorical:
+        if drops:
+            raise DesignError(f"levels to drop given for {sorted(drops)}, which are not categorical columns")
         return acc, None, None
     reference = reference or {}
-    unknown = (set(reference) | set(merges or {})) - set(spec.categorical)
+    unknown = (set(reference) | set(merges or {}) | set(drops or {})) - set(spec.categorical)
     if unknown:
         raise DesignError(f"levels given for {sorted(unknown)}, which are not categorical columns")
     raw_index = {n: i for i, n in enumerate(acc.names)}
@@ -113,7 +135,7 @@ def finalize_coding(
     for pos, col in enumerate(spec.categorical):
         needs_ref = spec.has_intercept_column or pos > 0 or bool(spec.absorb)
         plan = _plan_column(col, acc.level_counts.get(col, {}), reference.get(col), min_count, max_levels,
-                            needs_ref, (merges or {}).get(col))
+                            needs_ref, (merges or {}).get(col), (drops or {}).get(col))
         for group in plan["columns"]:
             names.append(indicator_name(col, group))
             members = [lvl for lvl, off in plan["column_of"].items() if off == plan["columns"].index(group)]

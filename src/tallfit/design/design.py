@@ -22,9 +22,13 @@ class Design:
     """Builds DesignBlocks for one pass over the data."""
 
     def __init__(self, spec: ModelSpec, coding: dict | None = None, unseen: str = "error",
-                 predicting: bool = False) -> None:
+                 predicting: bool = False, structured: bool = False) -> None:
         self.spec = spec
         self.predicting = predicting
+        # structured: blocks hold only [features | y] (no intercept, no indicators, rows not scaled
+        # by √w) plus each row's level codes and weight, for the accumulators that exploit the
+        # one-hot structure (accumulate/onehot.py, accumulate/absorb.py)
+        self.structured = structured and coding is None
         if predicting:  # scoring keeps every row: no filter, no target, no weights
             self.frame = compile_frame(spec.derive, None) if spec.derive else None
         else:
@@ -49,6 +53,8 @@ class Design:
         """Current design column names, target last."""
         if self.fixed_names is not None:
             return self.fixed_names
+        if self.structured:
+            return [t for t in self.spec.term_names if t != INTERCEPT] + [self.spec.target]
         cat = [n for coder in self.coders for n in coder.names]
         return self.spec.term_names + cat + [self.spec.target]
 
@@ -66,7 +72,7 @@ class Design:
     # -- one batch ---------------------------------------------------------------------------
     def block(self, batch: pa.RecordBatch, label: str, extra_columns=()) -> DesignBlock:
         """The design block of one batch; `extra_columns` come along restricted to the used rows."""
-        if self.plain:
+        if self.plain and not self.structured:
             block = design_block(batch, self.spec)
             block.names = None
             filtered = batch
@@ -162,18 +168,28 @@ class Design:
                 dropped["(zero weight)"] = dropped.get("(zero weight)", 0) + int((zero & keep).sum())
                 keep &= ~zero
         for coder, codes in zip(self.coders, codes_all):
+            if self.structured:
+                continue
             blocks.append(coder.indicators(codes[keep] if not keep.all() else codes))
             if coder.n_columns > WIDE_LEVELS and coder.column not in self.wide_warned:
                 self.wide_warned.add(coder.column)
 
         rows = np.flatnonzero(keep) if not keep.all() else None
-        parts = []
-        if spec.has_intercept_column:
-            parts.append(np.ones((m if rows is None else rows.size, 1)))
-        for v in numeric + indicators:
-            parts.append((v if rows is None else v[rows])[:, None])
-        cols = parts + blocks + [(y if rows is None else y[rows])[:, None]]
-        A = np.asfortranarray(np.hstack(cols)) if cols else np.zeros((0, 0))
+        n_rows = m if rows is None else rows.size
+        columns = numeric + indicators
+        width = (spec.has_intercept_column and not self.structured) + len(columns) + sum(b.shape[1] for b in blocks) + 1
+        A = np.empty((n_rows, width), order="F")  # filled column by column: no stacking copies
+        j = 0
+        if spec.has_intercept_column and not self.structured:
+            A[:, 0] = 1.0
+            j = 1
+        for v in columns:
+            A[:, j] = v if rows is None else v[rows]
+            j += 1
+        for b in blocks:
+            A[:, j:j + b.shape[1]] = b
+            j += b.shape[1]
+        A[:, j] = y if rows is None else y[rows]
         block = DesignBlock(A=A, n_read=n_read, dropped_by_column=dropped, keep=None if rows is None else keep)
         block.names = list(self.names)
         block.filled = filled
@@ -184,7 +200,12 @@ class Design:
             wk = w if rows is None else w[rows]
             block.weight_sum = float(wk.sum())
             block.weight_log_sum = float(np.log(wk).sum())
-            np.multiply(A, np.sqrt(wk)[:, None], out=A)
+            block.row_weights = wk
+            if not self.structured:
+                np.multiply(A, np.sqrt(wk)[:, None], out=A)
+        if self.structured:
+            block.codes = [codes if rows is None else codes[rows] for codes in codes_all]
+            block.level_sizes = [coder.n_columns for coder in self.coders]  # levels known so far
         if self.coders and self.fixed_names is None:
             block.level_counts = {}
             for coder, codes in zip(self.coders, codes_all):

@@ -1,0 +1,173 @@
+"""Categorical columns and absorbed keys without dense indicator columns (engine/levels_pass.py),
+weights with absorbed keys and per-group models, and levels dropped after the pass.
+
+References: statsmodels OLS/WLS with explicit dummy columns (statsmodels.regression.linear_model)
+on the grunfeld firm-year panel statsmodels ships (Grunfeld 1958, as in Greene, Econometric
+Analysis); the dense-indicator path of tallfit itself for the structured one (equal to rounding).
+Invented data only where a property is checked (many cells, levels first seen late)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+import tallfit
+from tallfit.errors import DesignError
+
+sm = pytest.importorskip("statsmodels.api")
+
+
+def _grunfeld():
+    df = sm.datasets.grunfeld.load_pandas().data
+    rng = np.random.default_rng(3)  # a weight per row, as a precision would be
+    w = rng.uniform(0.2, 3.0, len(df))
+    table = pa.table({"invest": df.invest.to_numpy(), "value": df.value.to_numpy(),
+                      "capital": df.capital.to_numpy(), "firm": df.firm.astype(str).to_numpy(),
+                      "year": df.year.astype(int).astype(str).to_numpy(), "w": w})
+    return df, table, w
+
+
+def _dummies(labels, levels):
+    return np.column_stack([(labels == lv).astype(float) for lv in levels])
+
+
+def _dense_fit(table, target, features, **kw):
+    """The same fit through the dense-indicator pass (method other than the default)."""
+    from tallfit.engine import levels_pass
+
+    original = levels_pass.structured_applies
+    levels_pass_applies = lambda spec: False  # noqa: E731
+    import tallfit.api as api
+
+    api.structured_applies = levels_pass_applies
+    try:
+        return tallfit.fit(table, target, features, **kw)
+    finally:
+        api.structured_applies = original
+
+
+@pytest.mark.parametrize("kw", [
+    {"categorical": ["firm", "year"], "reference": {"firm": "US Steel"}},
+    {"categorical": ["year"], "absorb": "firm"},
+    {"categorical": ["year"], "absorb": "firm", "weights": "w"},
+    {"categorical": ["firm"], "weights": "w", "weight_kind": "frequency"},
+])
+def test_structured_pass_equals_dense_indicator_pass(kw):
+    _, table, _ = _grunfeld()
+    fast = tallfit.fit(table, "invest", ["value", "capital"], batch_rows=23, **kw)
+    dense = _dense_fit(table, "invest", ["value", "capital"], batch_rows=23, **kw)
+    assert fast.terms == dense.terms
+    for a, b in [(fast.inference.estimate, dense.inference.estimate),
+                 (fast.inference.std_error, dense.inference.std_error)]:
+        np.testing.assert_allclose(a, b, rtol=1e-9)
+    assert fast.inference.df_resid == dense.inference.df_resid
+    np.testing.assert_allclose(fast.inference.r_squared, dense.inference.r_squared, rtol=1e-10)
+
+
+def test_many_cells_fall_back_to_dense_indicators_mid_pass(monkeypatch):
+    import tallfit.engine.levels_pass as lp
+
+    _, table, _ = _grunfeld()
+    before = tallfit.fit(table, "invest", ["value"], categorical=["firm", "year"], batch_rows=30)
+    monkeypatch.setattr(lp, "MAX_CELLS", 40)  # the 220 firm-year cells exceed it after two batches
+    after = tallfit.fit(table, "invest", ["value"], categorical=["firm", "year"], batch_rows=30)
+    np.testing.assert_allclose(after.inference.estimate, before.inference.estimate, rtol=1e-9)
+    np.testing.assert_allclose(after.inference.std_error, before.inference.std_error, rtol=1e-9)
+    assert after.accumulator.n_used == before.accumulator.n_used == 220
+
+
+def test_weighted_absorbed_key_equals_wls_with_explicit_dummies():
+    df, table, w = _grunfeld()
+    model = tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", weights="w", batch_rows=17)
+    firms = sorted(set(df.firm))
+    X = np.column_stack([df.value, df.capital, _dummies(df.firm.to_numpy(), firms)])
+    res = sm.WLS(df.invest.to_numpy(), X, weights=w).fit()
+    inf = model.inference
+    np.testing.assert_allclose(inf.estimate, res.params[:2], rtol=1e-9)
+    np.testing.assert_allclose(inf.std_error, res.bse[:2], rtol=1e-9)
+    assert inf.df_resid == res.df_resid
+    np.testing.assert_allclose(inf.log_likelihood, res.llf, rtol=1e-10)
+    np.testing.assert_allclose(inf.r_squared, res.rsquared, rtol=1e-9)
+    effects = model.coding["absorbed"]["effects"]
+    np.testing.assert_allclose([effects[f] for f in firms], res.params[2:], rtol=1e-8)
+
+
+def test_frequency_weighted_absorbed_key_counts_weights_as_rows():
+    df, table, _ = _grunfeld()
+    reps = (np.arange(len(df)) % 3 + 1).astype(float)
+    table = table.set_column(table.schema.get_field_index("w"), "w", pa.array(reps))
+    model = tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", weights="w",
+                        weight_kind="frequency")
+    firms = sorted(set(df.firm))
+    r = reps.astype(int)
+    X = np.repeat(np.column_stack([df.value, df.capital, _dummies(df.firm.to_numpy(), firms)]), r, axis=0)
+    res = sm.OLS(np.repeat(df.invest.to_numpy(), r), X).fit()
+    assert model.inference.df_resid == res.df_resid
+    np.testing.assert_allclose(model.inference.std_error, res.bse[:2], rtol=1e-9)
+
+
+def test_weighted_categorical_with_absorbed_key_equals_wls():
+    df, table, w = _grunfeld()
+    model = tallfit.fit(table, "invest", ["value"], categorical=["year"], absorb="firm", weights="w",
+                        reference={"year": "1935"})
+    firms = sorted(set(df.firm))
+    years = sorted(set(table["year"].to_pylist()) - {"1935"})
+    yr = np.array(table["year"].to_pylist())
+    X = np.column_stack([df.value, _dummies(yr, years), _dummies(df.firm.to_numpy(), firms)])
+    res = sm.WLS(df.invest.to_numpy(), X, weights=w).fit()
+    np.testing.assert_allclose(model.inference.estimate, res.params[:1 + len(years)], rtol=1e-8)
+    np.testing.assert_allclose(model.inference.std_error, res.bse[:1 + len(years)], rtol=1e-8)
+
+
+def test_weighted_groups_equal_separate_wls_fits():
+    df, table, w = _grunfeld()
+    g = tallfit.fit(table, "invest", ["value", "capital"], by=["firm"], weights="w", batch_rows=31)
+    for firm in ("General Motors", "US Steel", "Atlantic Refining"):
+        sel = (df.firm == firm).to_numpy()
+        res = sm.WLS(df.invest.to_numpy()[sel], sm.add_constant(df[["value", "capital"]].to_numpy()[sel]),
+                     weights=w[sel]).fit()
+        m = g.groups[firm]
+        np.testing.assert_allclose(m.inference.estimate, res.params, rtol=1e-9)
+        np.testing.assert_allclose(m.inference.std_error, res.bse, rtol=1e-9)
+        np.testing.assert_allclose(m.inference.log_likelihood, res.llf, rtol=1e-10)
+
+
+def test_dropped_level_equals_a_direct_fit_with_that_coding():
+    df, table, _ = _grunfeld()
+    model = tallfit.fit(table, "invest", ["value", "capital"], categorical=["firm"],
+                        reference={"firm": "US Steel"}, drop_levels={"firm": ["Chrysler", "IBM"]},
+                        batch_rows=19)
+    kept = sorted(set(df.firm) - {"US Steel", "Chrysler", "IBM"})
+    X = np.column_stack([np.ones(len(df)), df.value, df.capital, _dummies(df.firm.to_numpy(), kept)])
+    res = sm.OLS(df.invest.to_numpy(), X).fit()
+    assert model.terms == ["(intercept)", "value", "capital"] + [f"firm[{f}]" for f in kept]
+    np.testing.assert_allclose(model.inference.estimate, res.params, rtol=1e-9)
+    np.testing.assert_allclose(model.inference.std_error, res.bse, rtol=1e-9)
+    assert model.coding["columns"]["firm"]["dropped"] == ["Chrysler", "IBM"]
+    pred = tallfit.predict(model, table)["prediction"].to_numpy()  # their rows scored as US Steel
+    np.testing.assert_allclose(pred, res.fittedvalues, rtol=1e-9)
+    with pytest.raises(DesignError, match="cannot drop level 'Acme'"):
+        tallfit.fit(table, "invest", ["value"], categorical=["firm"], drop_levels={"firm": ["Acme"]})
+    with pytest.raises(DesignError, match="both the reference and dropped"):
+        tallfit.fit(table, "invest", ["value"], categorical=["firm"], reference={"firm": "IBM"},
+                    drop_levels={"firm": ["IBM"]})
+
+
+def test_level_tables_equal_python_dictionaries():
+    from tallfit.design.categorical import IntTable, StringTable
+
+    rng = np.random.default_rng(0)
+    labels = [f"h{v:05d}" for v in rng.integers(0, 3000, 20_000)] + ["", "é-ü"]
+    t, ref = StringTable(), {}
+    for start in range(0, len(labels), 997):  # in batches, so the table grows and rehashes
+        part = labels[start:start + 997]
+        ids = t.ids(pa.array(part))
+        expect = [ref.setdefault(s, len(ref)) for s in part]
+        assert ids.tolist() == expect
+    keys = rng.integers(0, 1 << 40, 5000)
+    keys = np.concatenate([keys, keys[:100]])
+    it = IntTable()
+    ids = it.ids(keys)
+    ref = {}
+    assert ids.tolist() == [ref.setdefault(int(k), len(ref)) for k in keys]
