@@ -199,7 +199,7 @@ def run_tasks(tasks: Sequence[Callable[[], T]], workers: int) -> list[T]:
 
 #: Parquet files are split into runs of whole row groups of at least this many rows, so that one
 #: big file still gives every worker its own share of the decoding.
-SPAN_ROWS = 1 << 20
+SPAN_ROWS = 1 << 18
 
 
 def source_parts(source, span_rows: int | None = None) -> list | None:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator, Mapping
+import threading
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -95,6 +96,22 @@ def slices(batch: pa.RecordBatch, batch_rows: int) -> Iterator[pa.RecordBatch]:
         yield batch.slice(start, batch_rows)
 
 
+class SharedFooter:
+    """A Parquet footer parsed once and lent to every part of its file, dropped after the last
+    part has been read (a part read again after that parses the footer itself)."""
+
+    def __init__(self, meta, parts: int) -> None:
+        self.meta = meta
+        self._left = parts
+        self._lock = threading.Lock()
+
+    def release(self) -> None:
+        with self._lock:
+            self._left -= 1
+            if self._left <= 0:
+                self.meta = None
+
+
 def _row_group_spans(rows: list[int], span_rows: int) -> list[tuple[int, int, int]]:
     """(first, stop, first row) runs of consecutive row groups of at least span_rows rows each
     (the last run takes what is left)."""
@@ -133,6 +150,7 @@ class Source:
         self._span: tuple[int, int, int] | None = None  # (first, stop, first row): a part of one Parquet file
         self.decode_threads = True                   # let the reader decode a batch on several threads
         self.is_part = False                         # made by parts(): not split again
+        self._footer: SharedFooter | None = None     # a Parquet footer shared by the parts of one file
 
     # ---- schema
     @property
@@ -278,6 +296,8 @@ class Source:
                 if self._span is not None:
                     extra["row_groups"] = self._span[:2]
                     row = self._span[2]
+                if self._footer is not None and self._footer.meta is not None:
+                    extra["footer"] = self._footer.meta
             for rb in self._reader.read(loc, read_cols, types, batch_rows, check, **extra):
                 if isinstance(rb, int):  # a row group skipped by its statistics
                     row += rb
@@ -286,6 +306,8 @@ class Source:
                 for piece in slices(rb, batch_rows):
                     yield Chunk(self._assemble(piece, columns, out_schema, loc, row), i, row)
                     row += piece.num_rows
+            if self._footer is not None:
+                self._footer.release()
 
     def _assemble(self, piece: pa.RecordBatch, columns: list[str], out_schema: pa.Schema,
                   loc: Located, row: int) -> pa.RecordBatch:
@@ -312,14 +334,19 @@ class Source:
         schema = self.schema
         out: list[tuple[Source, int]] = []
         for i, loc in enumerate(self._locs):
-            spans = [None]
+            spans, footer = [None], None
             if span_rows > 0 and self.format == "parquet":
-                spans = _row_group_spans(self._reader.row_group_rows(loc), span_rows) or [None]
+                meta = self._reader.footer(loc)
+                rows = [meta.row_group(g).num_rows for g in range(meta.num_row_groups)]
+                spans = _row_group_spans(rows, span_rows) or [None]
+                if len(spans) > 1:
+                    footer = SharedFooter(meta, len(spans))
             for span in spans:
                 sub = Source([loc], self.format, self._reader, self._hint)
                 sub._schema = schema
                 sub._part_types = dict(self._part_types)
                 sub._span = span
+                sub._footer = footer
                 sub.decode_threads = self.decode_threads
                 sub.is_part = True
                 if i in self._file_columns:

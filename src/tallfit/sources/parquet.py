@@ -25,14 +25,15 @@ class ParquetReader:
     strict_columns = True
     inferred = False
 
-    def _open(self, loc: Located) -> tuple[pa.NativeFile, pq.ParquetFile]:
+    def _open(self, loc: Located, metadata=None) -> tuple[pa.NativeFile, pq.ParquetFile]:
         local = isinstance(loc.fs, pafs.LocalFileSystem)
         try:
             f = loc.fs.open_input_file(loc.fs_path)
         except _BAD_STATUS as exc:
             raise DataSourceError(f"{loc.path}: cannot open file ({exc})") from None
         try:
-            return f, pq.ParquetFile(f, pre_buffer=False, buffer_size=BUFFER_LOCAL if local else BUFFER_REMOTE)
+            return f, pq.ParquetFile(f, metadata=metadata, pre_buffer=False,
+                                     buffer_size=BUFFER_LOCAL if local else BUFFER_REMOTE)
         except _BAD_STATUS as exc:
             f.close()
             raise DataSourceError(f"{loc.path}: not a readable Parquet file ({exc}); it may be truncated, "
@@ -46,26 +47,26 @@ class ParquetReader:
             except _BAD_STATUS as exc:
                 raise DataSourceError(f"{loc.path}: unreadable Parquet schema ({exc})") from None
 
-    def row_group_rows(self, loc: Located) -> list[int]:
-        """Rows of each row group, from the footer."""
+    def footer(self, loc: Located):
+        """The file's parsed footer (pyarrow FileMetaData), to lend to later reads of the same file."""
         f, pf = self._open(loc)
         with f:
             try:
-                meta = pf.metadata
-                return [meta.row_group(g).num_rows for g in range(meta.num_row_groups)]
+                return pf.metadata
             except _BAD_STATUS as exc:
                 raise DataSourceError(f"{loc.path}: unreadable Parquet footer ({exc})") from None
 
     def read(self, loc: Located, columns: list[str], types: dict[str, pa.DataType], batch_rows: int,
              check: Callable[[pa.Schema], None] | None, prune=None, row_groups: tuple[int, int] | None = None,
-             use_threads: bool = True) -> Iterator[pa.RecordBatch | int]:
+             use_threads: bool = True, footer=None) -> Iterator[pa.RecordBatch | int]:
         """Batches of the file; with `prune`, row groups whose statistics rule out every row are
         skipped and their row count is yielded as an int instead (so row offsets stay right).
 
         ``row_groups`` = (first, stop) reads only those row groups; ``use_threads`` lets pyarrow
         decode the columns of a batch on several threads (off when the caller runs one reader per
-        core itself)."""
-        f, pf = self._open(loc)
+        core itself); ``footer`` (from :meth:`footer`) saves parsing it again: a big file's parsed
+        footer is tens of MB, and several parts of it are read at once."""
+        f, pf = self._open(loc, footer)
         with f:
             meta = pf.metadata
             first, stop = (0, meta.num_row_groups) if row_groups is None else row_groups
