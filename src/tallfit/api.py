@@ -158,7 +158,7 @@ def fit(
     structured = method == "qr" and structured_applies(spec)
     if structured:  # level statistics instead of dense indicator columns (engine/levels_pass.py)
         design = Design(spec, structured=True)
-        raw = structured_pass(source, spec, batch_rows, progress, design)
+        raw = structured_pass(source, spec, batch_rows, progress, design, workers=workers)
     else:
         design = Design(spec)
         raw = local.accumulate(source, spec, batch_rows, progress, design=design, workers=workers, method=method)

@@ -24,7 +24,7 @@ from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.accumulate.onehot import count_block, grow_rows
 from tallfit.design.categorical import LevelCoder
 from tallfit.design.spec import indicator_name
-from tallfit.kernels.groups import within_rows, within_rows_levels
+from tallfit.kernels.groups import merge_levels, within_rows, within_rows_levels
 from tallfit.kernels.tsqr import fold_rows
 
 
@@ -132,6 +132,11 @@ class AbsorbAccumulator:
                 self.members.append((c, int(code)))
             cols[:, c] = g[lc]
         L = len(self.members)
+        self._grow_moments(G, L)
+        return cols, L
+
+    def _grow_moments(self, G: int, L: int) -> None:
+        """Moment arrays with room for G key levels and L indicator levels."""
         rows, width = self.key_level.shape
         if rows < G or width < L:
             rows = rows if rows >= G else max(G, 2 * rows, 16)
@@ -144,7 +149,58 @@ class AbsorbAccumulator:
             grown[: self.cross.shape[0], : self.cross.shape[1]] = self.cross
             self.cross = grown
             self.sums = grow_rows(self.sums, width)
-        return cols, L
+
+    # -- parts read apart ------------------------------------------------------------------------
+    def merge(self, other: "AbsorbAccumulator") -> "AbsorbAccumulator":
+        """Take in the accumulator of another part of the data (changed in place; returned).
+
+        Key levels (and indicator levels) are matched by label, so parts merged in order number
+        them as one stream would. A key level in both gets the pairwise row
+        √(W_a W_b/(W_a + W_b))·(m_b − m_a) in the within factor (Chan, Golub & LeVeque); the
+        indicator sums are moved to this part's shift s_a: Σ w(z − s_a) = Σ w(z − s_b) +
+        W_gl (s_b − s_a) (kernels/groups.py: merge_levels)."""
+        k = self.W.k
+        G_b = other.coder.n_columns
+        key = self.coder.adopt(other.coder)
+        self.state = grow_rows(self.state, self.coder.n_columns)
+        empty = np.zeros((0, 0))
+        if self.coders:
+            perm = self._adopt_moments(other)
+            L_b = perm.size
+            up = other.cross[:L_b, :L_b]
+            full = np.zeros((len(self.members),) * 2)
+            full[np.ix_(perm, perm)] = up + np.triu(up, 1).T
+            L = len(self.members)
+            self.cross[:L, :L] += np.triu(full)
+            self.sums[perm] += other.sums[:L_b]
+            moments = (self.key_level, other.key_level, perm, self.sums)
+        else:
+            moments = (empty, empty, np.zeros(0, np.int64), empty)
+        out = np.zeros((G_b, k), order="F")
+        r = merge_levels(self.state, other.state[:G_b], key, out, *moments)
+        self.W = self.W.merge(other.W)
+        if r:
+            self.W.R = fold_rows(self.W.R, out[:r])
+        return self
+
+    def _adopt_moments(self, other: "AbsorbAccumulator") -> np.ndarray:
+        """This accumulator's moment index of each of the other's (new indicator levels appended),
+        with the moment arrays grown to fit."""
+        maps = [mine.adopt(theirs) for mine, theirs in zip(self.coders, other.coders)]
+        for c, coder in enumerate(self.coders):
+            gl = self.global_of[c]
+            if gl.size < coder.n_columns:
+                self.global_of[c] = np.concatenate([gl, np.full(coder.n_columns - gl.size, -1, np.int64)])
+        perm = np.empty(len(other.members), dtype=np.int64)
+        for i, (c, code) in enumerate(other.members):
+            mine = int(maps[c][code])
+            gl = self.global_of[c]
+            if gl[mine] < 0:
+                gl[mine] = len(self.members)
+                self.members.append((c, mine))
+            perm[i] = gl[mine]
+        self._grow_moments(self.coder.n_columns, len(self.members))
+        return perm
 
     # -- after the pass ------------------------------------------------------------------------
     def raw_names(self) -> list[str]:

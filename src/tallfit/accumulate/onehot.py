@@ -105,6 +105,35 @@ class CellAccumulator:
                 self.W.R = fold_rows(self.W.R, self._out[:r])
         count_block(self.W, block)
 
+    def merge(self, other: "CellAccumulator") -> "CellAccumulator":
+        """Take in the accumulator of another part of the data (changed in place; returned).
+
+        Levels are matched by label (``LevelCoder.adopt``), so parts merged in order number
+        levels and cells as one stream would. A cell in both gets the pairwise (Chan–Golub–
+        LeVeque) row √(n_a n_b/(n_a + n_b))·(z̄_b − z̄_a) in the within factor, whose merge with
+        the other's within factor is then exact."""
+        maps = [mine.adopt(theirs) for mine, theirs in zip(self.coders, other.coders)]
+        G_b = other.n_cells
+        if G_b:
+            lv = other.cell_levels()
+            before = self.cells.n
+            ids = self.cells.ids(cell_keys([mp[lv[:, c]] for c, mp in enumerate(maps)]))
+            self.counts = _ensure_rows(self.counts, self.cells.n)
+            self.means = _ensure_rows(self.means, self.cells.n)
+            n_a, n_b = self.counts[ids], other.counts[:G_b]
+            m_a, m_b = self.means[ids], other.means[:G_b]
+            seen = ids < before
+            n = n_a + n_b
+            rows = np.sqrt(n_a[seen] * n_b[seen] / n[seen])[:, None] * (m_b[seen] - m_a[seen])
+            self.means[ids] = np.where(seen[:, None], m_a + (m_b - m_a) * (n_b / n)[:, None], m_b)
+            self.counts[ids] = n
+        else:
+            rows = np.zeros((0, len(self.z_names)))
+        self.W = self.W.merge(other.W)
+        if rows.shape[0]:
+            self.W.R = fold_rows(self.W.R, np.asfortranarray(rows))
+        return self
+
     def cell_levels(self) -> np.ndarray:
         """cells × columns: the level code of each categorical column in each cell."""
         keys = self.cells.keys[: self.cells.n]

@@ -78,6 +78,12 @@ class StringTable:
                                             self.table, self.n, self.used)
         return ids
 
+    def labels(self) -> pa.Array:
+        """The known strings in id order, as an Arrow array over this table's own buffers (copied)."""
+        off = np.ascontiguousarray(self.key_off[: self.n + 1])
+        data = np.ascontiguousarray(self.key_data[: self.used])
+        return pa.LargeStringArray.from_buffers(self.n, pa.py_buffer(off.copy()), pa.py_buffer(data.copy()))
+
 
 class IntTable:
     """Non-negative int64 keys → dense ids in order of discovery (numba hash table)."""
@@ -121,7 +127,7 @@ class LevelCoder:
             raise DesignError(f"unseen-level policy must be one of {', '.join(UNSEEN_POLICIES)}, not {unseen!r}")
         self.column = column
         self.discover = fixed is None
-        self.index: dict[str, int] = {} if fixed is None else dict(fixed)  # level -> column (-1 reference)
+        self._index: dict[str, int] = {} if fixed is None else dict(fixed)  # level -> column (-1 reference)
         self.n_columns = n_columns
         self.other = other
         self.unseen = unseen
@@ -131,6 +137,16 @@ class LevelCoder:
         self._value_cols: np.ndarray | None = None
         self._table: StringTable | None = None
         self._last: tuple[pa.Array, np.ndarray] | None = None  # a batch dictionary and its columns
+
+    @property
+    def index(self) -> dict[str, int]:
+        """Level → column. Levels found through the hash table are added here only when asked
+        for (a key of 10^5 levels read in many parts would otherwise build this dict per part)."""
+        table = self._table
+        if table is not None and len(self._index) < table.n:
+            for level in table.labels().slice(len(self._index)).to_pylist():
+                self._index[level] = len(self._index)
+        return self._index
 
     @property
     def names(self) -> list[str]:
@@ -165,27 +181,42 @@ class LevelCoder:
         if parts is None:
             return None
         dictionary, indices = parts
-        if dictionary.null_count:
-            return None
         if self._table is None:
-            if self.index:  # levels found by the general path first: keep their columns
+            if self._index:  # levels found by the general path first: keep their columns
                 return None
             self._table = StringTable()
         if self._last is not None and self._last[0].equals(dictionary):
             cols = self._last[1]
         else:
-            before = self._table.n
-            ids = self._table.ids(dictionary)
-            new = np.flatnonzero(ids >= before)
-            if new.size:
-                for i, level in zip(ids[new], dictionary.take(pa.array(new)).to_pylist()):
-                    self.index[level] = int(i)
-                self.n_columns = self._table.n
+            if dictionary.null_count:  # a null inside the dictionary codes as a null row
+                valid = dictionary.is_valid().to_numpy(zero_copy_only=False)
+                ids = np.full(len(dictionary), -2, dtype=np.int64)
+                ids[valid] = self._table.ids(dictionary.filter(pa.array(valid)))
+            else:
+                ids = self._table.ids(dictionary)
+            self.n_columns = self._table.n
             cols = np.append(ids, -2)  # nulls index the last slot
             self._last = (dictionary, cols)
         if indices.null_count:
             indices = indices.fill_null(len(dictionary))
         return cols[indices.to_numpy(zero_copy_only=False)]
+
+    def adopt(self, other: "LevelCoder") -> np.ndarray:
+        """Take in the levels of another discovering coder of the same column (a part of the data
+        read apart): returns the code here of each of its codes, levels new here appended in its
+        order, so merging parts in order numbers levels as one stream would."""
+        n = other.n_columns
+        if n == 0:
+            return np.zeros(0, dtype=np.int64)
+        labels = other._table.labels() if other._table is not None else \
+            pa.array(sorted(other.index, key=other.index.__getitem__), type=pa.string())
+        if self._table is None and not self._index:
+            self._table = StringTable()
+        if self._table is None:  # levels found by the general path: one by one
+            return np.array([self._column_of(level, "") for level in labels.to_pylist()], dtype=np.int64)
+        ids = self._table.ids(labels)
+        self.n_columns = self._table.n
+        return ids
 
     def _known_columns(self, dictionary: pa.Array, label: str) -> np.ndarray:
         """Column of each entry of a batch's level dictionary: known levels by one hash lookup in
@@ -210,6 +241,10 @@ class LevelCoder:
         if col is not None:
             return col
         if self.discover:
+            if self._table is not None:  # one numbering: the hash table's, as on the fast path
+                col = int(self._table.ids(pa.array([level], type=pa.string()))[0])
+                self.n_columns = self._table.n
+                return col
             self.index[level] = col = self.n_columns
             self.n_columns += 1
             return col

@@ -2,17 +2,32 @@
 structure: blocks carry only [features | y] and level codes (Design(structured=True)); cells of
 the categorical columns (accumulate/onehot.py) or the absorbed key's levels (accumulate/absorb.py)
 keep per-level statistics, and the factor of the dense indicator design is formed after the pass.
-One stream, decoded one thread ahead of the thread that accumulates.
+
+A data set of several parts (files, runs of Parquet row groups: ``Source.parts``) is read on
+every core: each part gets its own Design and accumulator, and the part accumulators are merged
+in part order (levels matched by label), so the answer is the same, bit for bit, whatever the
+number of workers. Memory: O(levels × features) per accumulator alive, that is per worker plus
+the running merge and parts finished ahead of their turn. One stream otherwise, decoded one
+thread ahead of the thread that accumulates.
 """
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 
+from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.accumulate.onehot import MAX_CELLS, MAX_COLUMNS, CellAccumulator, count_block
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec, indicator_name
 from tallfit.kernels.tsqr import fold_rows
+
+
+#: Parts are runs of whole Parquet row groups of at least this many rows: every part's accumulator
+#: holds statistics of up to every level, so fewer, longer parts than the numeric pass's make for
+#: fewer merges (each costs O(levels × features)) while still giving every worker several parts.
+SPAN_ROWS = 1 << 20
 
 
 def structured_applies(spec: ModelSpec) -> bool:
@@ -47,25 +62,104 @@ def _dense(block, design: Design, at_least: list[int]) -> tuple[np.ndarray, list
     return D, spec.term_names + cat + [spec.target]
 
 
-def structured_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design | None = None):
+def structured_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design | None = None,
+                    workers: int | None = None):
     """One pass; returns an AbsorbAccumulator (absorbed key) or a FactorAccumulator (the dense
     indicator design's factor, levels discovered while streaming)."""
+    from tallfit.engine.parallel import source_parts
+
+    parts = source_parts(source, SPAN_ROWS)
+    if parts is None:
+        acc = _stream_pass(source, spec, batch_rows, progress, design or Design(spec, structured=True))
+    else:
+        acc = _parts_pass(parts, spec, batch_rows, progress, workers)
+    return acc.to_factor() if isinstance(acc, CellAccumulator) else acc
+
+
+def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int | None):
+    """Every part on its own (W threads), merged in part order as each finishes its turn."""
+    from tallfit.engine.parallel import offset_progress, run_tasks, worker_count
+    from tallfit.engine.passes import PART_PREFETCH
+
+    w = worker_count(workers)
+    lock = threading.Lock()
+    fold = _OrderedFold(_merge)
+
+    def task(index: int, sub, file_index: int):
+        def run() -> None:
+            sub.decode_threads = w == 1  # several workers: each decodes on its own core
+            hook = offset_progress(progress, file_index, lock)
+            acc = _stream_pass(sub, spec, batch_rows, hook, Design(spec, structured=True),
+                               prefetch=PART_PREFETCH if w == 1 else 0)
+            fold.add(index, acc)
+        return run
+
+    run_tasks([task(i, sub, f) for i, (sub, f) in enumerate(parts)], w)
+    return fold.result()
+
+
+class _OrderedFold:
+    """Merges results handed in by index, in index order (acc = merge(acc, next)), as soon as
+    the next one is there; results ahead of their turn wait. One merge at a time."""
+
+    def __init__(self, merge) -> None:
+        self.merge = merge
+        self.acc = None
+        self.next = 0
+        self.waiting: dict[int, object] = {}
+        self._lock = threading.Lock()
+        self._merging = threading.Lock()
+
+    def add(self, index: int, item) -> None:
+        with self._lock:
+            self.waiting[index] = item
+        with self._merging:
+            while True:
+                with self._lock:
+                    item = self.waiting.pop(self.next, None)
+                    if item is None:
+                        return
+                    self.next += 1
+                self.acc = item if self.acc is None else self.merge(self.acc, item)
+
+    def result(self):
+        if self.waiting:
+            raise RuntimeError("a part's result is missing")  # pragma: no cover - run_tasks raised first
+        return self.acc
+
+
+def _merge(a, b):
+    """Merge two part results (cell statistics, a dense factor after a fallback, or absorbed-key
+    statistics); cells beyond MAX_CELLS continue as the dense design's factor."""
+    if isinstance(a, CellAccumulator) and isinstance(b, CellAccumulator):
+        a = a.merge(b)
+        return a.to_factor() if a.n_cells > MAX_CELLS else a
+    if isinstance(a, (CellAccumulator, FactorAccumulator)):
+        fa = a.to_factor() if isinstance(a, CellAccumulator) else a
+        fb = b.to_factor() if isinstance(b, CellAccumulator) else b
+        return fa.merge(fb)
+    return a.merge(b)
+
+
+def _stream_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design, prefetch: int = 2):
+    """One stream: an AbsorbAccumulator, a CellAccumulator, or (after a fallback from too many
+    cells) the dense design's FactorAccumulator."""
     from tallfit.engine.local import count_pruned, design_blocks, span_label
 
-    design = design or Design(spec, structured=True)
     z_names = design.names
     if spec.absorb:
         from tallfit.accumulate.absorb import AbsorbAccumulator
 
         acc = AbsorbAccumulator(spec.absorb, z_names, coders=design.coders, spec=spec)
-        for block in design_blocks(source, spec, batch_rows, progress, extra_columns=[spec.absorb], design=design):
+        for block in design_blocks(source, spec, batch_rows, progress, extra_columns=[spec.absorb], design=design,
+                                   prefetch=prefetch):
             acc.update_block(block, block.extra[spec.absorb],
                              span_label(source, block.file_index, block.row_start, block.n_read))
         count_pruned(source, acc.W)
         return acc
     cells = CellAccumulator(spec, design.coders, z_names)
     dense = None  # after a fallback: the dense design's factor
-    for block in design_blocks(source, spec, batch_rows, progress, design=design):
+    for block in design_blocks(source, spec, batch_rows, progress, design=design, prefetch=prefetch):
         if dense is None:
             cells.update_block(block)
             if cells.n_cells > MAX_CELLS:  # too many combinations: continue with dense indicators
@@ -78,9 +172,7 @@ def structured_pass(source, spec: ModelSpec, batch_rows: int, progress, design: 
         if D.shape[0]:
             dense.R = fold_rows(dense.R, D)
         count_block(cells.W, block)
+    count_pruned(source, cells.W)
     if dense is None:
-        acc = cells.to_factor()
-    else:
-        acc = cells.to_factor_bookkeeping(dense)
-    count_pruned(source, acc)
-    return acc
+        return cells
+    return cells.to_factor_bookkeeping(dense)

@@ -269,3 +269,46 @@ def within_rows_levels(Z, codes, levels, w, state, level_counts, cross, sums, ou
                 state[g, 1 + j] = Z[i, j]
         state[g, 0] = nb
     return r
+
+
+@numba.njit(cache=True, nogil=True)
+def merge_levels(state, other, key, out, key_level, other_levels, perm, sums):
+    """Merge another part's key-level statistics ``other`` (rows [W_g, m_g (k), s_g (k)]) into
+    ``state``, its level b being level key[b] here; returns the rows written into ``out``.
+
+    A level in both gets the pairwise row √(W_a W_b/(W_a + W_b))·(m_b − m_a) (Chan, Golub &
+    LeVeque) and the merged mean; it keeps its shift s_a. A new level takes the other's row.
+    With indicator moments (``perm`` non-empty: the other's moment index l is perm[l] here), the
+    other's weight sums ``other_levels`` are added into ``key_level``, and ``sums`` gets
+    W_gl (s_b − s_a), which moves the other's shifted sums to the shift kept."""
+    k = out.shape[1]
+    L_b = perm.shape[0]
+    r = 0
+    for b in range(other.shape[0]):
+        nb = other[b, 0]
+        if nb == 0.0:
+            continue
+        g = key[b]
+        na = state[g, 0]
+        for l in range(L_b):
+            c = other_levels[b, l]
+            if c != 0.0:
+                p = perm[l]
+                key_level[g, p] += c
+                if na > 0.0:
+                    for j in range(k):
+                        sums[p, j] += c * (other[b, 1 + k + j] - state[g, 1 + k + j])
+        if na > 0.0:
+            n = na + nb
+            s = np.sqrt(na * nb / n)
+            f = nb / n
+            for j in range(k):
+                d = other[b, 1 + j] - state[g, 1 + j]
+                out[r, j] = s * d
+                state[g, 1 + j] += d * f
+            r += 1
+        else:
+            for j in range(1, 1 + 2 * k):
+                state[g, j] = other[b, j]
+        state[g, 0] = na + nb
+    return r
