@@ -140,3 +140,27 @@ def test_cv_with_a_categorical_term_equals_refits():
     np.testing.assert_allclose(rep.cv.fold_mse, ref, rtol=RTOL)
     b = np.linalg.lstsq(D[~hold], y[~hold], rcond=None)[0]
     np.testing.assert_allclose(rep.holdout.mse, np.mean((y[hold] - D[hold] @ b) ** 2), rtol=RTOL)
+
+
+def test_cv_from_parquet_parts_on_every_core_equals_refits(tmp_path, monkeypatch):
+    """Two Parquet files of many row groups, split into parts read in parallel: rows keep their
+    scan positions, so folds and holdout are those of a serial pass (numpy lstsq refits)."""
+    import pyarrow.parquet as pq
+
+    import tallfit.engine.parallel as parallel
+
+    monkeypatch.setattr(parallel, "SPAN_ROWS", 700)
+    table, X, y = _fair()
+    half = table.num_rows // 2
+    paths = []
+    for i, part in enumerate((table.slice(0, half), table.slice(half))):
+        paths.append(str(tmp_path / f"fair-{i}.parquet"))
+        pq.write_table(part, paths[-1], row_group_size=333)
+    assert len(parallel.source_parts(as_source(paths))) > 4
+    plan = FoldPlan(folds=5, seed=2, holdout=0.2)
+    rep = validate(paths, FAIR[0], FAIR[1], folds=5, holdout=0.2, seed=2, batch_rows=128)
+    holdout, fold = plan.assign({}, np.arange(len(y)))
+    train = ~holdout
+    np.testing.assert_allclose(rep.cv.fold_mse, _brute_cv(X[train], y[train], fold[train]), rtol=RTOL)
+    b = np.linalg.lstsq(X[train], y[train], rcond=None)[0]  # numpy lstsq on the training rows
+    np.testing.assert_allclose(rep.holdout.mse, np.mean((y[holdout] - X[holdout] @ b) ** 2), rtol=RTOL)

@@ -15,16 +15,18 @@ from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
 
 
 def split_blocks(source, spec: ModelSpec, plan: FoldPlan, batch_rows: int = DEFAULT_BATCH_ROWS,
-                 progress: ProgressHook | None = None, coding: dict | None = None):
+                 progress: ProgressHook | None = None, coding: dict | None = None, *, first_row: int = 0,
+                 prefetch: int = 2):
     """Design blocks with each used row's holdout flag and fold id (``FoldPlan.assign``).
 
     With ``coding`` (a later pass) the columns are the fitted ones; a level the fit never saw
-    (one only in the holdout) is coded as the reference level.
+    (one only in the holdout) is coded as the reference level. ``first_row``: the scan position
+    of the source's first row (a part of a larger data set).
     """
-    position = 0
+    position = int(first_row)
     unseen = "reference" if coding else "error"
     for block in design_blocks(source, spec, batch_rows, progress, extra_columns=plan.key_columns,
-                               coding=coding, unseen=unseen):
+                               coding=coding, unseen=unseen, prefetch=prefetch):
         if block.keep is None:
             rows = np.arange(position, position + block.n_used, dtype=np.int64)
         else:
@@ -41,13 +43,68 @@ def accumulate_split(
     batch_rows: int = DEFAULT_BATCH_ROWS,
     progress: ProgressHook | None = None,
 ) -> FoldAccumulators:
-    """One pass: a factor per fold (one when no folds) and one for the holdout rows."""
+    """One pass: a factor per fold (one when no folds) and one for the holdout rows.
+
+    A plain design over a data set of several parts (files, runs of Parquet row groups) is split
+    on every core, each part into its own fold factors, merged in part order; rows keep their scan
+    positions (from the Parquet footers), so the split is the one a serial pass makes."""
+    parts = _positioned_parts(source, spec)
+    if parts is not None:
+        return _accumulate_split_parts(parts, spec, plan, batch_rows, progress)
     accs = FoldAccumulators.create(spec.term_names + [spec.target], plan)
-    for block, holdout, folds in split_blocks(source, spec, plan, batch_rows, progress):
+    _fill(accs, split_blocks(source, spec, plan, batch_rows, progress), plan)
+    return accs
+
+
+def _fill(accs: FoldAccumulators, blocks, plan: FoldPlan) -> None:
+    for block, holdout, folds in blocks:
         for key in plan.key_columns:
             accs.count_missing_keys(key, block.extra[key].null_count)
         accs.update_block(block, holdout, folds)
-    return accs
+
+
+def _positioned_parts(source, spec: ModelSpec) -> list | None:
+    """(part, scan position of its first row) for a plain design over Parquet parts, else None."""
+    from tallfit.design.design import Design
+    from tallfit.engine.parallel import source_parts
+
+    if not Design(spec).plain or getattr(source, "format", None) != "parquet":
+        return None
+    parts = source_parts(source)
+    if parts is None:
+        return None
+    file_rows = [sub.row_count() for sub, _ in parts]
+    offsets, out, file_start, current = {}, [], 0, None
+    for (sub, i), n in zip(parts, file_rows):
+        if i != current:  # first part of file i: the file starts after all rows of earlier files
+            offsets[i] = file_start
+            current = i
+        out.append((sub, i, offsets[i] + sub.first_row))
+        file_start = offsets[i] + sub.first_row + n
+    return out
+
+
+def _accumulate_split_parts(parts, spec: ModelSpec, plan: FoldPlan, batch_rows: int, progress) -> FoldAccumulators:
+    import threading
+
+    from tallfit.engine.parallel import offset_progress, run_tasks, tree_merge, worker_count
+
+    lock = threading.Lock()
+    w = worker_count(None)
+    w += 1 if w > 1 else 0  # one spare, as in the fit's pass
+
+    def task(sub, file_index: int, first_row: int):
+        def run() -> FoldAccumulators:
+            sub.decode_threads = w == 1
+            accs = FoldAccumulators.create(spec.term_names + [spec.target], plan)
+            hook = offset_progress(progress, file_index, lock)
+            _fill(accs, split_blocks(sub, spec, plan, batch_rows, hook, first_row=first_row,
+                                     prefetch=2 if w == 1 else 0), plan)
+            return accs
+        return run
+
+    results = run_tasks([task(*p) for p in parts], w)
+    return tree_merge(results, lambda a, b: a.merge(b))
 
 
 def finalize_split(accs: FoldAccumulators, spec: ModelSpec, reference=None, min_count=None,

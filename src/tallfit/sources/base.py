@@ -356,6 +356,23 @@ class Source:
                 out.append((sub, i))
         return out
 
+    @property
+    def first_row(self) -> int:
+        """Row of its file where this source starts (a part of a Parquet file; else 0)."""
+        return self._span[2] if self._span is not None else 0
+
+    def row_count(self) -> int:
+        """Rows of a Parquet source (or part), from the footers; other formats must be read to tell."""
+        if self.format != "parquet":
+            raise DataSourceError(f"the row count of {self.format} files is only known by reading them")
+        total = 0
+        for loc in self._locs:
+            meta = self._footer.meta if (self._footer is not None and self._footer.meta is not None) \
+                else self._reader.footer(loc)
+            first, stop = self._span[:2] if self._span is not None else (0, meta.num_row_groups)
+            total += sum(meta.row_group(g).num_rows for g in range(first, stop))
+        return total
+
     def _use_engine(self, engine: str) -> None:
         """Switch the text parser ("polars", "pyarrow", "pyarrow-stream"); for benchmarks and tests."""
         if not hasattr(self._reader, "engine"):
