@@ -231,3 +231,14 @@ def test_design_blocks_from_parts_equal_a_serial_stream(one_file_of_many_row_gro
     assert [(b.file_index, b.row_start, b.n_read) for b in parallel] == [(b.file_index, b.row_start, b.n_read) for b in serial]
     assert all(np.array_equal(a.A, b.A) for a, b in zip(serial, parallel))
     assert sum(b.n_used for b in parallel) == 220
+
+
+def test_folding_in_place_keeps_the_column_ranges():
+    from tallfit.accumulate.factor import FactorAccumulator
+
+    rng = np.random.default_rng(5)
+    A = np.asfortranarray(rng.normal(size=(3000, 4)) * [1, 2, 3, 4])
+    lo, hi = A.min(axis=0), A.max(axis=0)
+    acc = FactorAccumulator.create(["a", "b", "c", "y"])
+    acc.update(A.copy(order="F"), overwrite=True)
+    assert np.array_equal(acc.col_min, lo) and np.array_equal(acc.col_max, hi)

@@ -70,9 +70,9 @@ class FactorAccumulator:
         if A.shape[1] != self.k:
             raise ValueError(f"block has {A.shape[1]} columns, accumulator has {self.k}")
         if A.shape[0]:
-            self.R = fold_rows(self.R, A, overwrite=overwrite)
             np.minimum(self.col_min, A.min(axis=0) if col_min is None else col_min, out=self.col_min)
             np.maximum(self.col_max, A.max(axis=0) if col_max is None else col_max, out=self.col_max)
+            self.R = fold_rows(self.R, A, overwrite=overwrite)  # after the ranges: it may destroy A
         self.n_used += A.shape[0]
         self.n_read += A.shape[0] if n_read is None else n_read
         _add_counts(self.dropped_by_column, dropped or {})

@@ -213,12 +213,15 @@ class FoldAccumulators:
             return
         if holdout is not None and holdout.any():
             rows = np.flatnonzero(holdout)
-            self.holdout.update_block(_part(block, _gather(A, rows)))
+            self.holdout.update_block(_part(block, _gather(A, rows)), overwrite=True)  # our own copy
             train = np.flatnonzero(~holdout)
         else:
             train = None
         if fold_ids is None:
-            self.folds[0].update_block(_part(block, A if train is None else _gather(A, train)))
+            if train is None:
+                self.folds[0].update_block(_part(block, A))
+            else:
+                self.folds[0].update_block(_part(block, _gather(A, train)), overwrite=True)
             return
         ids = (fold_ids if train is None else fold_ids[train]).astype(np.uint16)  # small ints: radix sort
         order = np.argsort(ids, kind="stable")
@@ -226,7 +229,7 @@ class FoldAccumulators:
         bounds = np.searchsorted(ids[order], np.arange(len(self.folds) + 1))
         for j, acc in enumerate(self.folds):
             if bounds[j + 1] > bounds[j]:
-                acc.update_block(_part(block, S[bounds[j] : bounds[j + 1]]))
+                acc.update_block(_part(block, S[bounds[j] : bounds[j + 1]]), overwrite=True)  # S is ours
 
     def count_missing_keys(self, column: str, count: int) -> None:
         if count:
