@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tallfit.diagnostics.kernels import grid_bin_sums
+from tallfit.diagnostics.kernels import grid_bin_sums_rows
 
 GRID_CELLS = 1024
 TAIL = 0.0005  # a sample of part of the data sets the grid between its 0.05 % and 99.95 % points
@@ -64,15 +64,17 @@ class BinnedSums:
         return cls(grid, np.zeros((q, grid.cells + 2, 4)), np.full(q, np.inf), np.full(q, -np.inf))
 
     def update(self, A: np.ndarray, e: np.ndarray, cols: np.ndarray | None = None,
-               kbuf: np.ndarray | None = None) -> None:
-        """Fold the rows of A's columns ``cols`` (all by default) with their residuals e."""
-        if A.shape[0] == 0:
+               kbuf: np.ndarray | None = None, rows: tuple[int, int] | None = None) -> None:
+        """Fold the rows of A's columns ``cols`` (all by default) with their residuals e (indexed
+        like A's rows); ``rows`` = (start, stop) folds only those."""
+        r0, r1 = rows if rows is not None else (0, A.shape[0])
+        if r1 <= r0:
             return
         cols = np.arange(A.shape[1], dtype=np.int64) if cols is None else np.asarray(cols, dtype=np.int64)
-        if kbuf is None or len(kbuf) < A.shape[0]:
-            kbuf = np.empty(A.shape[0], dtype=np.int64)
-        grid_bin_sums(A, cols, e, self.grid.lo, self.grid.scale, self.grid.cells, self.sums,
-                      self.lo_seen, self.hi_seen, kbuf)
+        if kbuf is None or len(kbuf) < r1:
+            kbuf = np.empty(r1, dtype=np.int64)
+        grid_bin_sums_rows(A, r0, r1, cols, e, self.grid.lo, self.grid.scale, self.grid.cells, self.sums,
+                           self.lo_seen, self.hi_seen, kbuf)
 
     def merge(self, other: "BinnedSums") -> "BinnedSums":
         return BinnedSums(self.grid, self.sums + other.sums, np.minimum(self.lo_seen, other.lo_seen),

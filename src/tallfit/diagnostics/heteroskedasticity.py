@@ -17,6 +17,8 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
+from tallfit.diagnostics.kernels import square_moments
+
 
 @dataclass
 class BreuschPaganSums:
@@ -31,14 +33,13 @@ class BreuschPaganSums:
     def create(cls, p: int, intercept: bool) -> "BreuschPaganSums":
         return cls(p, intercept, np.zeros(p))
 
-    def update(self, Z: np.ndarray, e: np.ndarray) -> None:
+    def add_squares(self, e: np.ndarray) -> None:
+        """Fold one block's uᵢ = eᵢ² into the centred sums (``g`` gets Σ zᵢuᵢ from
+        kernels.scores_and_leverage, in the same sweep as the sandwich scores)."""
         m = len(e)
         if m == 0:
             return
-        u = e * e
-        self.g += Z.T @ u
-        mb = float(u.mean())
-        m2b = float(((u - mb) ** 2).sum())
+        mb, m2b = square_moments(e)
         self._combine(m, mb, m2b)
 
     def _combine(self, m: int, mb: float, m2b: float) -> None:

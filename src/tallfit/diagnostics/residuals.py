@@ -147,5 +147,12 @@ class TopRows:
         self.values = values[order]
         self.rows = [rows[i] for i in order]
 
+    def merge(self, other: "TopRows") -> "TopRows":
+        """The k largest of both (ties keep this one's rows first, as one pass over both would)."""
+        values = np.concatenate([self.values, other.values])
+        rows = self.rows + other.rows
+        order = np.argsort(-values, kind="stable")[: self.k]
+        return TopRows(self.k, self.label, values[order], [rows[i] for i in order])
+
     def to_list(self) -> list[dict[str, Any]]:
         return [dict(r) for r in self.rows]

@@ -1,0 +1,175 @@
+"""The second pass over a data set of several parts: worker-count invariance and agreement with one
+ordered scan (property tests on invented server telemetry), and its kernels against numpy.
+
+* Any number of workers gives the same sums bit for bit (parts are merged in part order by a tree
+  whose shape depends only on the number of parts).
+* The parts' merged sums equal those of one ordered scan of the same rows to rounding, with the
+  same bin grids (set from the same first rows), the same cluster numbering and the same top rows.
+* ``scores_and_leverage`` and ``times_upper`` against plain numpy / scipy solve_triangular.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+from scipy.linalg import solve_triangular
+
+import tallfit
+from tallfit.diagnostics.assemble import build_diagnostics
+from tallfit.diagnostics.kernels import (
+    design_residuals, scores_and_leverage, scores_and_leverage_reference, times_upper,
+)
+from tallfit.diagnostics.residuals import TopRows
+from tallfit.engine.second_pass import SAMPLE_ROWS, second_pass
+from tallfit.errors import DesignError
+from tallfit.solve.robust import robust_for_model
+
+FILES, ROWS, BATCH = 5, 30_000, 6_000  # 150,000 rows: the grid sample (131,072) spans five files
+FEATURES = ["cpu_util", "inlet_temp_c"]
+
+
+def _fleet(seed: int = 3) -> pa.Table:
+    rng = np.random.default_rng(seed)
+    n = FILES * ROWS
+    cpu = rng.uniform(0, 1, n)
+    temp = rng.normal(24, 3, n)
+    host = rng.integers(0, 400, n)
+    power = 180 + 120 * cpu + 2.5 * temp + rng.normal(0, 4 + 10 * cpu, n)
+    return pa.table({"cpu_util": cpu, "inlet_temp_c": temp, "power_w": power,
+                     "host_id": pa.array([f"h{h:03d}" for h in host]),
+                     "rack": pa.array([f"r{h // 40}" for h in host])})
+
+
+@pytest.fixture(scope="module")
+def fleet(tmp_path_factory):
+    table = _fleet()
+    folder = tmp_path_factory.mktemp("fleet")
+    for i in range(FILES):
+        pq.write_table(table.slice(i * ROWS, ROWS), folder / f"part{i}.parquet", row_group_size=ROWS)
+    model = tallfit.fit(table, target="power_w", features=FEATURES)
+    return table, str(folder), model
+
+
+def _run(model, data, workers=None):
+    return second_pass(model, data, cluster=["host_id", "rack"], keep=["host_id"], top_k=7,
+                       batch_rows=BATCH, workers=workers)
+
+
+def _arrays(sp) -> dict[str, np.ndarray]:
+    out = {"gram": sp.sandwich.gram, "score_sum": sp.sandwich.score_sum, "bp_g": sp.breusch_pagan.g,
+           "bp": np.array([sp.breusch_pagan.n, sp.breusch_pagan.mean, sp.breusch_pagan.m2]),
+           "features": sp.feature_bins.sums, "fitted": sp.fitted_bins.sums, "heat": sp.heat,
+           "hist": sp.residuals.hist, "moments": sp.residuals.sums,
+           "top": sp.top_residuals.values, "lev": sp.top_leverage.values}
+    for c in sp.clusters:
+        out["cluster " + c.name] = c.S[: c.groups]
+    return out
+
+
+def test_any_worker_count_gives_identical_sums(fleet):
+    _, folder, model = fleet
+    one = _run(model, folder, workers=1)
+    assert one.n_used == FILES * ROWS
+    for w in (2, 3):
+        other = _run(model, folder, workers=w)
+        for name, a in _arrays(one).items():
+            np.testing.assert_array_equal(a, _arrays(other)[name], err_msg=name)
+        assert other.top_residuals.rows == one.top_residuals.rows
+
+
+def test_parts_equal_one_ordered_scan(fleet):
+    table, folder, model = fleet
+    assert FILES * ROWS > SAMPLE_ROWS > (FILES - 1) * ROWS  # the sample ends inside the last file
+    serial = _run(model, table)  # an in-memory table is one ordered stream
+    parts = _run(model, folder, workers=2)
+    a, b = _arrays(serial), _arrays(parts)
+    assert a.keys() == b.keys()
+    # Σ zᵢeᵢ is rounding noise around 0 on the fitting data: both only need to be that small
+    assert max(serial.sandwich.normal_equations_residual(), parts.sandwich.normal_equations_residual()) < 1e-12
+    for name in set(a) - {"score_sum"}:
+        np.testing.assert_allclose(b[name], a[name], rtol=1e-10, atol=1e-9 * np.abs(a[name]).max(), err_msg=name)
+    np.testing.assert_array_equal(parts.feature_bins.grid.lo, serial.feature_bins.grid.lo)
+    assert [c.groups for c in parts.clusters] == [c.groups for c in serial.clusters] == [400, 10, 400]
+    # rows are counted within their file
+    rows = [(int(r["file"][-9]) * ROWS + r["row"], r["host_id"]) for r in parts.top_residuals.rows]
+    assert rows == [(r["row"], r["host_id"]) for r in serial.top_residuals.rows]
+    ra = robust_for_model(model, serial.sandwich, serial.clusters, None)
+    rb = robust_for_model(model, parts.sandwich, parts.clusters, None)
+    for kind in ("HC0", "HC2", "HC3", "cluster:host_id+rack"):
+        np.testing.assert_allclose(rb["estimators"][kind]["covariance"], ra["estimators"][kind]["covariance"],
+                                   rtol=1e-10, err_msg=kind)
+    da, db = build_diagnostics(model, serial), build_diagnostics(model, parts)
+    for fa, fb in zip(da["features"], db["features"]):
+        assert fa["bins"]["count"] == fb["bins"]["count"]
+
+
+def test_a_missing_cluster_key_names_its_file(tmp_path, fleet):
+    table, _, model = fleet
+    for i in range(2):
+        part = table.slice(i * 1000, 1000)
+        if i == 1:
+            host = part.column("host_id").to_pylist()
+            host[10] = None
+            part = part.set_column(part.schema.get_field_index("host_id"), "host_id", pa.array(host))
+        pq.write_table(part, tmp_path / f"p{i}.parquet")
+    with pytest.raises(DesignError, match=r"cluster column 'host_id' has 1 missing value\(s\) in .*p1\.parquet, rows 0-999"):
+        second_pass(model, str(tmp_path), cluster=["host_id"], diagnostics=False, workers=2)
+
+
+def test_top_rows_merge_equals_one_update():
+    rng = np.random.default_rng(4)
+    score = np.round(rng.normal(size=300), 1)  # ties: the earlier row must win, as in one pass
+    rows = [{"row": i} for i in range(300)]
+    whole = TopRows(9, "x")
+    whole.update(score, lambda idx: [rows[i] for i in idx])
+    a, b = TopRows(9, "x"), TopRows(9, "x")
+    a.update(score[:170], lambda idx: [rows[i] for i in idx])
+    b.update(score[170:], lambda idx: [rows[170 + i] for i in idx])
+    merged = a.merge(b)
+    assert merged.rows == whole.rows
+    np.testing.assert_array_equal(merged.values, whole.values)
+
+
+def test_score_kernels_match_numpy():
+    rng = np.random.default_rng(8)
+    m, p = 777, 5
+    R = np.asfortranarray(np.triu(rng.normal(size=(p, p))) + 3 * np.eye(p))
+    A = np.asfortranarray(np.column_stack([rng.normal(size=(m, p)), rng.normal(size=m)]))
+    beta = rng.normal(size=p)
+    X, fitted, e = np.empty((m - 100, p), order="F"), np.full(m, np.nan), np.full(m, np.nan)
+    design_residuals(A, 100, m, np.arange(p), beta, X, fitted, e)
+    np.testing.assert_array_equal(X, A[100:, :p])
+    np.testing.assert_allclose(e[100:], A[100:, p] - A[100:, :p] @ beta, rtol=1e-13, atol=1e-13)
+    assert np.isnan(e[:100]).all()
+    Rinv = np.asfortranarray(np.triu(np.linalg.inv(R)))
+    Z = times_upper(Rinv, X)  # Z R = X
+    np.testing.assert_allclose(Z, solve_triangular(R, A[100:, :p].T, trans="T").T, rtol=1e-12, atol=1e-14)
+    B = A.copy(order="F")
+    times_upper(Rinv, B, 100, m)  # rows 100.. of B's first p columns, in place; the rest untouched
+    np.testing.assert_array_equal(B[:100], A[:100])
+    np.testing.assert_array_equal(B[:, p], A[:, p])
+    np.testing.assert_allclose(B[100:, :p], Z, rtol=1e-14, atol=1e-15)
+    Z = np.asfortranarray(Z / 30.0)
+    Z[3] = 0.0
+    Z[3, 0] = 1.0  # a row of leverage 1: d = ∞ in the HC2/HC3 columns, as the reference says
+    ee = e[100:].copy()
+    V, h, g, s = np.empty((len(Z), 2 * p), order="F"), np.empty(len(Z)), np.zeros(p), np.zeros(p)
+    scores_and_leverage(Z, 0, len(Z), ee, V, h, g, s)
+    Vr, hr, sr, gr = scores_and_leverage_reference(Z, ee)
+    # the same on a row range of a taller matrix, e and h indexed like its rows
+    Zt = np.asfortranarray(np.vstack([np.ones((50, p)), Z, np.ones((9, p))]))
+    et, ht = np.concatenate([np.zeros(50), ee, np.zeros(9)]), np.full(len(Zt), -1.0)
+    Vt, gt, st = np.empty_like(V), np.zeros(p), np.zeros(p)
+    scores_and_leverage(Zt, 50, 50 + len(Z), et, Vt, ht, gt, st)
+    np.testing.assert_array_equal(ht[50:50 + len(Z)], h)
+    assert (ht[:50] == -1).all() and (ht[50 + len(Z):] == -1).all()
+    np.testing.assert_array_equal(Vt, V)
+    np.testing.assert_allclose(h, hr, rtol=1e-14)
+    np.testing.assert_allclose(V[:, :p], Vr[:, :p], rtol=1e-15)
+    finite = np.isfinite(Vr)
+    np.testing.assert_allclose(V[finite], Vr[finite], rtol=1e-13)
+    assert np.array_equal(np.isfinite(V), finite)
+    np.testing.assert_allclose(s, sr, rtol=1e-12)
+    np.testing.assert_allclose(g, gr, rtol=1e-12)
