@@ -45,6 +45,20 @@ def worker_count(workers: int | None) -> int:
     return workers
 
 
+#: Designs narrower than this many columns are decode-bound: parts get one spare worker.
+SPARE_WORKER_BELOW_K = 48
+
+
+def part_workers(workers: int | None, k: int) -> int:
+    """Workers for a pass over parts: the cores, plus one spare for narrow designs when the caller
+    did not choose (while one worker holds the GIL for Python glue and copies, the spare decodes;
+    wide designs are bound by their arithmetic, and a third block buffer would only cost memory)."""
+    w = worker_count(workers)
+    if workers is None and w > 1 and k < SPARE_WORKER_BELOW_K:
+        w += 1
+    return w
+
+
 def tree_merge(items: Sequence[T], merge: Callable[[T, T], T]) -> T:
     """Merge neighbours pairwise, level by level: ((a b)(c d))(e ...), a fixed shape for a given count."""
     level = list(items)

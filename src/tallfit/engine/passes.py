@@ -23,7 +23,8 @@ from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec
 from tallfit.engine.gram_accumulator import GramAccumulator
-from tallfit.engine.parallel import BufferPool, fold_round_robin, offset_progress, run_tasks, source_parts, tree_merge, worker_count
+from tallfit.engine.parallel import (BufferPool, fold_round_robin, offset_progress, part_workers, run_tasks,
+                                     source_parts, tree_merge, worker_count)
 from tallfit.errors import DataSourceError
 from tallfit.kernels.gram import SAFE_DIGITS
 
@@ -85,8 +86,7 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
     if parts is not None:
         import threading
 
-        if workers is None and w > 1:
-            w += 1  # one spare: while a worker holds the GIL (Python glue, copies) another decodes
+        w = part_workers(workers, k)
 
         lock = threading.Lock()
 

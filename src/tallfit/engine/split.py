@@ -87,11 +87,10 @@ def _positioned_parts(source, spec: ModelSpec) -> list | None:
 def _accumulate_split_parts(parts, spec: ModelSpec, plan: FoldPlan, batch_rows: int, progress) -> FoldAccumulators:
     import threading
 
-    from tallfit.engine.parallel import offset_progress, run_tasks, tree_merge, worker_count
+    from tallfit.engine.parallel import offset_progress, part_workers, run_tasks, tree_merge
 
     lock = threading.Lock()
-    w = worker_count(None)
-    w += 1 if w > 1 else 0  # one spare, as in the fit's pass
+    w = part_workers(None, len(spec.term_names) + 1)
 
     def task(sub, file_index: int, first_row: int):
         def run() -> FoldAccumulators:
