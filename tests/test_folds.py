@@ -164,3 +164,15 @@ def test_cv_from_parquet_parts_on_every_core_equals_refits(tmp_path, monkeypatch
     np.testing.assert_allclose(rep.cv.fold_mse, _brute_cv(X[train], y[train], fold[train]), rtol=RTOL)
     b = np.linalg.lstsq(X[train], y[train], rcond=None)[0]  # numpy lstsq on the training rows
     np.testing.assert_allclose(rep.holdout.mse, np.mean((y[holdout] - X[holdout] @ b) ** 2), rtol=RTOL)
+
+
+def test_gather_rows_equals_numpy_indexing():
+    from tallfit.kernels.gather import gather_rows
+
+    rng = np.random.default_rng(4)
+    A = np.asfortranarray(rng.normal(size=(500, 7)))
+    idx = rng.permutation(500)[:321]
+    out = gather_rows(A, idx)
+    assert out.flags.f_contiguous and np.array_equal(out, A[idx])  # numpy fancy indexing
+    with pytest.raises(IndexError):
+        gather_rows(A, np.array([0, 500]))

@@ -22,6 +22,7 @@ import pyarrow.compute as pc
 
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.categorical import recount_levels
+from tallfit.kernels.gather import gather_rows
 from tallfit.errors import DesignError, SchemaError
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -150,10 +151,7 @@ class FoldPlan:
 
 def _gather(A: np.ndarray, idx: np.ndarray) -> np.ndarray:
     """Rows `idx` of A as a new Fortran-order array (column by column: the cheap direction)."""
-    out = np.empty((idx.size, A.shape[1]), dtype=np.float64, order="F")
-    for j in range(A.shape[1]):
-        np.take(A[:, j], idx, out=out[:, j])
-    return out
+    return gather_rows(A, idx)
 
 
 def _add_counts(into: dict, other: dict) -> dict:
