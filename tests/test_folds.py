@@ -166,13 +166,18 @@ def test_cv_from_parquet_parts_on_every_core_equals_refits(tmp_path, monkeypatch
     np.testing.assert_allclose(rep.holdout.mse, np.mean((y[holdout] - X[holdout] @ b) ** 2), rtol=RTOL)
 
 
-def test_gather_rows_equals_numpy_indexing():
-    from tallfit.kernels.gather import gather_rows
+def test_route_rows_equals_a_stable_sort_with_group_ranges():
+    from tallfit.kernels.gather import route_rows
 
     rng = np.random.default_rng(4)
     A = np.asfortranarray(rng.normal(size=(500, 7)))
-    idx = rng.permutation(500)[:321]
-    out = gather_rows(A, idx)
-    assert out.flags.f_contiguous and np.array_equal(out, A[idx])  # numpy fancy indexing
+    groups = rng.integers(0, 4, 500)
+    groups[groups == 2] = 3  # an empty group
+    S, starts, lo, hi = route_rows(A, groups, 5)
+    order = np.argsort(groups, kind="stable")  # numpy's stable sort as the reference
+    assert S.flags.f_contiguous and np.array_equal(S, A[order])
+    assert np.array_equal(starts, np.searchsorted(groups[order], np.arange(6)))
+    for g in (0, 1, 3):
+        assert np.array_equal(lo[g], A[groups == g].min(axis=0)) and np.array_equal(hi[g], A[groups == g].max(axis=0))
     with pytest.raises(IndexError):
-        gather_rows(A, np.array([0, 500]))
+        route_rows(A, groups, 3)

@@ -22,7 +22,7 @@ import pyarrow.compute as pc
 
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.categorical import recount_levels
-from tallfit.kernels.gather import gather_rows
+from tallfit.kernels.gather import route_rows
 from tallfit.errors import DesignError, SchemaError
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -149,11 +149,6 @@ class FoldPlan:
                 "assignment": "SplitMix64 hash of the key, or of the row position in the scan"}
 
 
-def _gather(A: np.ndarray, idx: np.ndarray) -> np.ndarray:
-    """Rows `idx` of A as a new Fortran-order array (column by column: the cheap direction)."""
-    return gather_rows(A, idx)
-
-
 def _add_counts(into: dict, other: dict) -> dict:
     for name, count in other.items():
         into[name] = into.get(name, 0) + int(count)
@@ -209,25 +204,23 @@ class FoldAccumulators:
         A = block.A
         if A.shape[0] == 0:
             return
-        if holdout is not None and holdout.any():
-            rows = np.flatnonzero(holdout)
-            self.holdout.update_block(_part(block, _gather(A, rows)), overwrite=True)  # our own copy
-            train = np.flatnonzero(~holdout)
-        else:
-            train = None
-        if fold_ids is None:
-            if train is None:
-                self.folds[0].update_block(_part(block, A))
-            else:
-                self.folds[0].update_block(_part(block, _gather(A, train)), overwrite=True)
+        has_holdout = holdout is not None and bool(holdout.any())
+        if fold_ids is None and not has_holdout:
+            self.folds[0].update_block(_part(block, A))
             return
-        ids = (fold_ids if train is None else fold_ids[train]).astype(np.uint16)  # small ints: radix sort
-        order = np.argsort(ids, kind="stable")
-        S = _gather(A, order if train is None else train[order])
-        bounds = np.searchsorted(ids[order], np.arange(len(self.folds) + 1))
-        for j, acc in enumerate(self.folds):
-            if bounds[j + 1] > bounds[j]:
-                acc.update_block(_part(block, S[bounds[j] : bounds[j + 1]]), overwrite=True)  # S is ours
+        # one sweep routes every row to its fold (or to the holdout, the last group) with each
+        # group's column ranges; the routed copy is ours, so it is folded in place
+        k = len(self.folds)
+        groups = np.zeros(A.shape[0], dtype=np.int64) if fold_ids is None else fold_ids.astype(np.int64)
+        if has_holdout:
+            groups = np.where(holdout, k, groups)
+        S, starts, lo, hi = route_rows(A, groups, k + 1)
+        targets = self.folds + ([self.holdout] if has_holdout else [])
+        for g, acc in enumerate(targets):
+            if starts[g + 1] > starts[g]:
+                part = _part(block, S[starts[g] : starts[g + 1]])
+                part.col_min, part.col_max = lo[g], hi[g]
+                acc.update_block(part, overwrite=True)
 
     def count_missing_keys(self, column: str, count: int) -> None:
         if count:
