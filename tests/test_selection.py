@@ -143,3 +143,51 @@ def test_selection_by_cv_uses_fold_errors():
     sel = select(acc.R, acc.n_used, acc.names, True, "forward", "cv", folds)
     cvs = [c.scores["cv"] for c in sel.path]
     assert all(b < a for a, b in zip(cvs, cvs[1:]))  # property: each step lowered the CV error
+
+
+@pytest.mark.parametrize("method", ["best", "forward", "backward"])
+def test_a_categorical_enters_and_leaves_as_one_term(method):
+    """Fair's occupation (6 levels) is one candidate term: the chosen model equals the BIC-best
+    subset of terms from statsmodels refits with occupation as dummy columns (best subset), and
+    no search splits its indicator columns."""
+    df = sm.datasets.fair.load_pandas().data
+    target, feats = "affairs", ["rate_marriage", "age", "yrs_married", "religious"]
+    occ = df["occupation"].astype(int).astype(str).to_numpy()
+    table = pa.table({**{c: df[c].to_numpy(float) for c in feats + [target]}, "occupation": occ})
+    spec = ModelSpec(target, tuple(feats), categorical=("occupation",))
+    from tallfit.engine.split import finalize_split
+
+    accs, _ = finalize_split(accumulate_split(as_source(table), spec, FoldPlan(folds=0, seed=1), 997), spec)
+    acc = accs.training()
+    names = acc.names
+    sel = select(acc.R, acc.n_used, names, True, method, "bic", categorical=("occupation",))
+    chosen = {names[i] for i in sel.chosen.cols}
+    indicators = {n for n in names if n.startswith("occupation[")}
+    assert indicators <= chosen or not (indicators & chosen)  # all of them or none
+    for cand in sel.path:
+        picked = {names[i] for i in cand.cols}
+        assert indicators <= picked or not (indicators & picked)
+    if method != "best":
+        return
+    dummies = pd_dummies(occ, acc, names)
+    terms = feats + ["occupation"]
+    bics = {}
+    for size in range(len(terms) + 1):
+        for combo in itertools.combinations(terms, size):  # statsmodels refit of every subset of terms
+            cols = [df[c].to_numpy(float)[:, None] for c in combo if c != "occupation"]
+            if "occupation" in combo:
+                cols.append(dummies)
+            X = np.hstack([np.ones((len(df), 1))] + cols)
+            bics[combo] = sm.OLS(df[target].to_numpy(float), X).fit().bic
+    want = min(bics, key=bics.get)
+    got = {n for n in chosen if n != "(intercept)" and not n.startswith("occupation[")}
+    if indicators <= chosen:
+        got.add("occupation")
+    assert got == set(want)
+    np.testing.assert_allclose(sel.chosen.scores["bic"], bics[want], rtol=1e-9)
+
+
+def pd_dummies(values, acc, names):
+    """Indicator columns of the levels tallfit kept (same reference level), from the raw labels."""
+    levels = [n[len("occupation["):-1] for n in names if n.startswith("occupation[")]
+    return np.column_stack([(values == lv).astype(float) for lv in levels])

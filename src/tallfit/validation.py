@@ -269,7 +269,8 @@ def build_validation(
             report.notes.append("no folds or holdout, so no ridge penalty was chosen (the path is shown)")
         report.ridge = rr
     if select:
-        sel = run_selection(train.R, train.n_used, names, spec.intercept, select, criterion, folds)
+        sel = run_selection(train.R, train.n_used, names, spec.intercept, select, criterion, folds,
+                            categorical=spec.categorical)
         report.selection = selection_report(sel, design)
         report.cautions.append(SELECTION_CAUTION)
     if compare:

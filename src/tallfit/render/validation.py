@@ -42,20 +42,30 @@ def _ridge_lines(rr) -> list[str]:
     return out
 
 
+def _terms(names: list[str]) -> list[str]:
+    """Column names as model terms: a categorical's indicator columns "col[level]" read as "col"."""
+    out: list[str] = []
+    for n in names:
+        term = n.split("[", 1)[0] if n.endswith("]") and "[" in n else n
+        if term not in out:
+            out.append(term)
+    return out
+
+
 def _selection_lines(sel) -> list[str]:
     out = ["", f"selection {sel.method} by {sel.criterion}"
            + (f" · {count(sel.nodes)} subsets examined" if sel.nodes else "")]
     crit = sel.criterion
     rows = [("terms", "RSS", "AIC", "BIC", "adj. R²") + (("CV MSE",) if "cv" in sel.steps[0] else ())]
     for st in sel.steps:
-        names = [t for t in st["terms"] if t != "(intercept)"]
+        names = _terms([t for t in st["terms"] if t != "(intercept)"])
         label = ", ".join(names) if names else "(intercept only)"
         if len(label) > 44:
             label = f"{len(names)} terms: " + label[: 30] + "…"
         row = (label, sig(st["rss"], 7), sig(st["aic"], 8), sig(st["bic"], 8), f"{st['adj_r2']:.5f}")
         rows.append(row + ((sig(st["cv"], 6),) if "cv" in st else ()))
     out.extend(_table(rows))
-    chosen = [t for t in sel.chosen if t != "(intercept)"]
+    chosen = _terms([t for t in sel.chosen if t != "(intercept)"])
     out.append(f"          chosen ({crit}): {', '.join(chosen) if chosen else 'intercept only'}")
     if sel.excluded:
         out.append(f"          left out as combinations of other terms: {', '.join(sel.excluded)}")

@@ -26,6 +26,7 @@ from tallfit.errors import DesignError
 from tallfit.solve.exact import find_aliases
 
 CRITERIA = ("aic", "bic", "adj_r2", "cv")
+MAX_GROUPED_BEST = 12  # 4,096 subsets of terms, each one small QR
 MAX_BEST_SUBSET = 20
 
 
@@ -104,39 +105,61 @@ class _Scorer:
         return -v if self.criterion == "adj_r2" else v
 
 
-def forward(scorer: _Scorer, pool: list[int]) -> tuple[list[Candidate], Candidate]:
-    """Add the column that improves the criterion most until none does; the path and the winner."""
+def _flat(groups: list[list[int]]) -> list[int]:
+    return [j for g in groups for j in g]
+
+
+def forward(scorer: _Scorer, pool: list[list[int]]) -> tuple[list[Candidate], Candidate]:
+    """Add the term (a group of columns: a categorical's indicators go together) that improves the
+    criterion most, until none does; the path and the winner."""
     current = scorer.candidate([])
     path = [current]
-    chosen: list[int] = []
-    left = list(pool)
+    chosen: list[list[int]] = []
+    left = [list(g) for g in pool]
     while left:
-        trials = [scorer.candidate(chosen + [j]) for j in left]
-        best = min(trials, key=scorer.key)
-        if scorer.key(best) >= scorer.key(current):
+        trials = [scorer.candidate(_flat(chosen + [g])) for g in left]
+        i = min(range(len(trials)), key=lambda t: scorer.key(trials[t]))
+        if scorer.key(trials[i]) >= scorer.key(current):
             break
-        added = [j for j in best.cols if j not in scorer.forced and j not in chosen][0]
-        chosen.append(added)
-        left.remove(added)
-        current = best
-        path.append(best)
+        chosen.append(left.pop(i))
+        current = trials[i]
+        path.append(current)
     return path, current
 
 
-def backward(scorer: _Scorer, pool: list[int]) -> tuple[list[Candidate], Candidate]:
-    """Remove the column whose removal improves the criterion most until none does."""
-    chosen = list(pool)
-    current = scorer.candidate(chosen)
+def backward(scorer: _Scorer, pool: list[list[int]]) -> tuple[list[Candidate], Candidate]:
+    """Remove the term whose removal improves the criterion most until none does."""
+    chosen = [list(g) for g in pool]
+    current = scorer.candidate(_flat(chosen))
     path = [current]
     while chosen:
-        trials = [scorer.candidate([c for c in chosen if c != j]) for j in chosen]
-        best = min(trials, key=scorer.key)
-        if scorer.key(best) >= scorer.key(current):
+        trials = [scorer.candidate(_flat(chosen[:i] + chosen[i + 1:])) for i in range(len(chosen))]
+        i = min(range(len(trials)), key=lambda t: scorer.key(trials[t]))
+        if scorer.key(trials[i]) >= scorer.key(current):
             break
-        chosen = [c for c in best.cols if c not in scorer.forced]
-        current = best
-        path.append(best)
+        chosen.pop(i)
+        current = trials[i]
+        path.append(current)
     return path, current
+
+
+def best_grouped_subsets(R: np.ndarray, forced: list[int], pool: list[list[int]]) -> dict[int, tuple[float, list[int]]]:
+    """The least-RSS subset of every size (number of terms) when some terms span several columns,
+    by enumerating every subset of terms (up to MAX_GROUPED_BEST terms)."""
+    from itertools import combinations
+
+    if len(pool) > MAX_GROUPED_BEST:
+        raise DesignError(
+            f"best-subset search over terms of several columns (categorical) is limited to {MAX_GROUPED_BEST} "
+            f"terms ({len(pool)} given); use forward or backward selection, or fewer candidates")
+    best: dict[int, tuple[float, list[int]]] = {}
+    for size in range(len(pool) + 1):
+        for combo in combinations(range(len(pool)), size):
+            cols = sorted(_flat([pool[i] for i in combo]))
+            rss = subset_rss(R, forced + cols)
+            if rss < best.get(size, (np.inf, []))[0]:
+                best[size] = (rss, cols)
+    return best
 
 
 def _child_rss(Rt: np.ndarray) -> tuple[float, np.ndarray]:
@@ -206,27 +229,42 @@ class Selection:
     nodes: int = 0
 
 
+def term_groups(pool: list[int], names: list[str], categorical=()) -> list[list[int]]:
+    """Candidate terms: each column alone, except a categorical column's indicators, which enter
+    and leave together (they are one factor of the model, coded against one reference level)."""
+    groups: dict[str, list[int]] = {}
+    for j in pool:
+        key = next((c for c in categorical if names[j].startswith(f"{c}[")), names[j])
+        groups.setdefault(key, []).append(j)
+    return list(groups.values())
+
+
 def select(R: np.ndarray, n: int, names: list[str], intercept: bool, method: str, criterion: str,
-           folds=None) -> Selection:
-    """Run one search over the design's features (the intercept is always kept)."""
+           folds=None, categorical=()) -> Selection:
+    """Run one search over the design's terms (the intercept is always kept)."""
     p = R.shape[0] - 1
     forced = [0] if intercept else []
     keep, _ = find_aliases(R, names[:-1])
     pool = [j for j in keep if j not in forced]
     excluded = [j for j in range(len(forced), p) if j not in keep]
+    terms = term_groups(pool, names, categorical)
     tss = float(np.sum(R[1:, -1] ** 2)) if intercept else float(np.sum(R[:, -1] ** 2))
     scorer = _Scorer(R, n, forced, criterion, tss, folds)
     if method == "forward":
-        path, chosen = forward(scorer, pool)
+        path, chosen = forward(scorer, terms)
         return Selection(method, criterion, path, chosen, excluded)
     if method == "backward":
-        path, chosen = backward(scorer, pool)
+        path, chosen = backward(scorer, terms)
         return Selection(method, criterion, path, chosen, excluded)
     if method != "best":
         raise DesignError(f"unknown selection method {method!r}; choose forward, backward or best")
-    fpath, _ = forward(_Scorer(R, n, forced, "bic", tss), pool)
-    seeds = [(c.rss, c.cols[len(forced):]) for c in fpath]
-    best, nodes = best_subsets(R, forced, pool, seeds)
+    if any(len(t) > 1 for t in terms):
+        best = best_grouped_subsets(R, forced, terms)
+        nodes = 2 ** len(terms)
+    else:
+        fpath, _ = forward(_Scorer(R, n, forced, "bic", tss), terms)
+        seeds = [(c.rss, c.cols[len(forced):]) for c in fpath]
+        best, nodes = best_subsets(R, forced, pool, seeds)
     path = [scorer.candidate(best[s][1]) for s in sorted(best)]
     chosen = min(path, key=scorer.key)
     return Selection(method, criterion, path, chosen, excluded, nodes)
