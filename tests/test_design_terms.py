@@ -277,25 +277,6 @@ def test_where_skips_row_groups_and_partitions_without_changing_the_answer(tmp_p
     assert model.inference.n_used == int(sel.sum())
 
 
-def test_group_kernels_equal_the_numpy_reference():
-    from tallfit.kernels.groups import centre_rows, group_means, group_means_reference, merge_means
-
-    rng = np.random.default_rng(0)
-    A = np.asfortranarray(rng.normal(size=(500, 4)))
-    inv = rng.integers(0, 37, 500)
-    inv[:37] = np.arange(37)  # every group present
-    counts, means = group_means(A, inv, 37)
-    rc, rm = group_means_reference(A, inv, 37)
-    np.testing.assert_allclose(counts, rc)
-    np.testing.assert_allclose(means, rm, rtol=1e-12, atol=1e-14)
-    np.testing.assert_allclose(centre_rows(A, means, inv), A - rm[inv], rtol=1e-12, atol=1e-14)
-    run_m, run_c = np.zeros((37, 4)), np.zeros(37)
-    merge_means(run_m, run_c, np.arange(37), means[:, :], counts)
-    merge_means(run_m, run_c, np.arange(37), means[:, :], counts)  # the same rows twice: same means
-    np.testing.assert_allclose(run_m, rm, rtol=1e-12, atol=1e-14)
-    np.testing.assert_allclose(run_c, 2 * rc)
-
-
 def test_second_pass_refuses_an_absorbed_model():
     df, table = _grunfeld()
     with pytest.raises(DesignError, match="absorbed key"):

@@ -11,7 +11,7 @@ equal those of a fit with one indicator per level; residual degrees of freedom a
 
 Categorical columns beside the key are not folded as dense indicator columns (whose centred
 values are dense): their within-key moments follow from per-(key level, indicator) weight sums,
-indicator cross sums and shifted sums of Z (kernels/groups.py: level_moments), and enter the
+indicator cross sums and shifted sums of Z (kernels/groups.py: within_rows_levels), and enter the
 factor through its Schur complement (:meth:`AbsorbAccumulator.raw_factor`); X keeps its QR.
 """
 

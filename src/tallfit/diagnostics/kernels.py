@@ -196,21 +196,10 @@ def square_moments(e):
 def _blas_pointer(name: str):
     """A right-side triangular routine (dtrmm, dtrsm) of scipy's BLAS as a ctypes function (ctypes
     releases the GIL during the call), or None."""
-    try:
-        from scipy.linalg import cython_blas
+    from tallfit.kernels.lapack_calls import scipy_routine
 
-        capsule = cython_blas.__pyx_capi__[name]
-        get_name = ctypes.pythonapi.PyCapsule_GetName
-        get_name.restype, get_name.argtypes = ctypes.c_char_p, [ctypes.py_object]
-        get_ptr = ctypes.pythonapi.PyCapsule_GetPointer
-        get_ptr.restype, get_ptr.argtypes = ctypes.c_void_p, [ctypes.py_object, ctypes.c_char_p]
-        address = get_ptr(capsule, get_name(capsule))
-    except (ImportError, KeyError, AttributeError, ValueError):  # pragma: no cover - other builds
-        return None
-    if not address:  # pragma: no cover
-        return None
     vp, pc, pi = ctypes.c_void_p, ctypes.c_char_p, ctypes.POINTER(ctypes.c_int)
-    return ctypes.CFUNCTYPE(None, pc, pc, pc, pc, pi, pi, vp, vp, pi, vp, pi)(address)
+    return scipy_routine("cython_blas", name, (pc, pc, pc, pc, pi, pi, vp, vp, pi, vp, pi))
 
 
 _ONE = np.ones(1)

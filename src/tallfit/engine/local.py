@@ -73,16 +73,7 @@ def design_blocks(
 
     def produce() -> Iterator[DesignBlock]:
         for chunk in source.batches(read, batch_rows, **prune):
-            label = chunk_label(source, chunk)
-            try:
-                if pool is not None and design.plain and not extra_columns:
-                    block = _pooled_block(chunk.batch, spec, pool)
-                else:
-                    block = design.block(chunk.batch, label, extra_columns)
-            except TallfitError:
-                raise
-            except (pa.ArrowException, ValueError, TypeError) as exc:
-                raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
+            block = _block_of(chunk, chunk_label(source, chunk), design, spec, pool, extra_columns)
             block.file_index, block.row_start = chunk.file_index, chunk.row_start
             if progress is not None:
                 progress(chunk.batch.num_rows, chunk.file_index)
@@ -123,16 +114,7 @@ def _parts_in_order(parts, spec, batch_rows, progress, read, extra_columns, codi
             sub.decode_threads = False  # one decoding thread per core already
             mine = Design(spec, coding=coding, unseen=unseen, predicting=design.predicting)
             for chunk in sub.batches(read, batch_rows):
-                label = chunk_label(sub, chunk)
-                try:
-                    if pool is not None and not extra_columns:
-                        block = _pooled_block(chunk.batch, spec, pool)
-                    else:
-                        block = mine.block(chunk.batch, label, extra_columns)
-                except TallfitError:
-                    raise
-                except (pa.ArrowException, ValueError, TypeError) as exc:
-                    raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
+                block = _block_of(chunk, chunk_label(sub, chunk), mine, spec, pool, extra_columns)
                 block.file_index, block.row_start = file_index, chunk.row_start
                 if progress is not None:
                     with lock:
@@ -141,6 +123,19 @@ def _parts_in_order(parts, spec, batch_rows, progress, read, extra_columns, codi
         return run
 
     return prefetched_in_order([producer(sub, i) for sub, i in parts], workers, depth=depth)
+
+
+def _block_of(chunk, label: str, design: Design, spec: ModelSpec, pool, extra_columns) -> DesignBlock:
+    """The design block of one chunk (in a pooled buffer when the design is plain), conversion
+    failures reported with the chunk's file and rows."""
+    try:
+        if pool is not None and design.plain and not extra_columns:
+            return _pooled_block(chunk.batch, spec, pool)
+        return design.block(chunk.batch, label, extra_columns)
+    except TallfitError:
+        raise
+    except (pa.ArrowException, ValueError, TypeError) as exc:
+        raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
 
 
 def _pooled_block(batch, spec: ModelSpec, pool) -> DesignBlock:

@@ -20,6 +20,28 @@ class _Failure:
         self.exc = exc
 
 
+def _put(q: queue.Queue, item, stop: threading.Event) -> bool:
+    """Put an item, waiting while the queue is full; False once the consumer has stopped."""
+    while not stop.is_set():
+        try:
+            q.put(item, timeout=0.1)
+            return True
+        except queue.Full:
+            continue
+    return False
+
+
+def _drain(q: queue.Queue) -> Iterator:
+    """The items of one producer's queue up to its end marker; a producer's failure is raised here."""
+    while True:
+        item = q.get()
+        if item is _DONE:
+            return
+        if isinstance(item, _Failure):
+            raise item.exc
+        yield item
+
+
 def prefetched(items: Iterable[T], depth: int = 2) -> Iterator[T]:
     """Yield the items of `items`, produced in a daemon thread at most `depth` ahead."""
     if depth <= 0:
@@ -29,13 +51,7 @@ def prefetched(items: Iterable[T], depth: int = 2) -> Iterator[T]:
     stop = threading.Event()
 
     def put(item) -> bool:
-        while not stop.is_set():
-            try:
-                q.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                continue
-        return False
+        return _put(q, item, stop)
 
     def produce() -> None:
         try:
@@ -50,13 +66,7 @@ def prefetched(items: Iterable[T], depth: int = 2) -> Iterator[T]:
     worker = threading.Thread(target=produce, name="tallfit-reader", daemon=True)
     worker.start()
     try:
-        while True:
-            item = q.get()
-            if item is _DONE:
-                return
-            if isinstance(item, _Failure):
-                raise item.exc
-            yield item
+        yield from _drain(q)
     finally:
         stop.set()
         worker.join(timeout=5)
@@ -80,13 +90,7 @@ def prefetched_in_order(producers: Sequence[Callable[[], Iterable[T]]], workers:
     stop = threading.Event()
 
     def put(q: queue.Queue, item) -> bool:
-        while not stop.is_set():
-            try:
-                q.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                continue
-        return False
+        return _put(q, item, stop)
 
     def run(w: int) -> None:
         for i in range(w, n, workers):
@@ -106,13 +110,7 @@ def prefetched_in_order(producers: Sequence[Callable[[], Iterable[T]]], workers:
         t.start()
     try:
         for q in queues:
-            while True:
-                item = q.get()
-                if item is _DONE:
-                    break
-                if isinstance(item, _Failure):
-                    raise item.exc
-                yield item
+            yield from _drain(q)
     finally:
         stop.set()
         for t in threads:

@@ -1,6 +1,8 @@
-"""Per-group sums and centring for absorbed keys (numba), beside a plain NumPy reference.
+"""Numba kernels for level statistics: hash tables that number labels, per-level running means
+with their Chan–Golub–LeVeque correction rows (within_rows, within_rows_levels), and the merge of
+two parts' per-level tables (merge_levels).
 
-With a key of 10^5 levels most groups in a batch hold one or two rows, where NumPy's grouped
+With a key of 10^5 levels most levels in a batch hold one or two rows, where NumPy's grouped
 reductions (reduceat, fancy-indexed updates) spend their time on per-group overhead; these
 loops touch each value once.
 """
@@ -10,56 +12,6 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-
-@numba.njit(cache=True, nogil=True)
-def group_means(A, inv, n_groups):
-    """Row counts and column means of A (m × k) per group id inv[i] in [0, n_groups)."""
-    m, k = A.shape
-    counts = np.zeros(n_groups)
-    for i in range(m):
-        counts[inv[i]] += 1.0
-    means = np.zeros((k, n_groups)).T  # Fortran order: each column's group sums stay in cache
-    for j in range(k):
-        for i in range(m):
-            means[inv[i], j] += A[i, j]
-    for j in range(k):
-        for g in range(n_groups):
-            means[g, j] /= counts[g]
-    return counts, means
-
-
-@numba.njit(cache=True, nogil=True)
-def centre_rows(A, means, inv):
-    """A copy of A (Fortran order) with each row minus its group's mean."""
-    m, k = A.shape
-    out = np.empty((k, m)).T  # Fortran-order m × k
-    for j in range(k):
-        for i in range(m):
-            out[i, j] = A[i, j] - means[inv[i], j]
-    return out
-
-
-@numba.njit(cache=True, nogil=True)
-def merge_means(means, counts, present, batch_means, batch_counts):
-    """Running means and counts of the groups `present` updated with a batch's (in place)."""
-    k = means.shape[1]
-    for j in range(k):  # column by column: both means arrays are Fortran order
-        for p in range(present.shape[0]):
-            g = present[p]
-            w = batch_counts[p] / (counts[g] + batch_counts[p])
-            means[g, j] += (batch_means[p, j] - means[g, j]) * w
-    for p in range(present.shape[0]):
-        counts[present[p]] += batch_counts[p]
-
-
-def group_means_reference(A: np.ndarray, inv: np.ndarray, n_groups: int):
-    counts = np.bincount(inv, minlength=n_groups).astype(np.float64)
-    sums = np.zeros((n_groups, A.shape[1]))
-    np.add.at(sums, inv, A)
-    return counts, sums / counts[:, None]
-
-
-# -- level tables: labels and level combinations → dense ids, discovered while streaming --------
 
 @numba.njit(cache=True, nogil=True)
 def _fnv(data, lo, hi):
@@ -193,42 +145,8 @@ def within_rows(Z, codes, w, counts, means, out):
 
 
 @numba.njit(cache=True, nogil=True)
-def level_moments(Z, codes, levels, w, seen, shift, level_counts, cross, sums):
-    """Statistics of indicator columns beside an absorbed key (for their within-key moments).
-
-    Row i has key level g = codes[i] and one indicator level per categorical column,
-    ``levels[i, c]`` (an index into all indicator columns). Accumulates (weights w, empty: 1):
-    ``level_counts[g, l]`` = Σ w over rows of g with indicator l; ``cross[l, l']`` = Σ w d dᵀ
-    (upper triangle); ``sums[l, :]`` = Σ w (z − s_g) over rows with indicator l, where s_g
-    (``shift``) is the first row of g, so the sums stay of the size of the within-g spread."""
-    m, k = Z.shape
-    C = levels.shape[1]
-    weighted = w.shape[0] > 0
-    for i in range(m):
-        g = codes[i]
-        wi = w[i] if weighted else 1.0
-        if wi == 0.0:
-            continue
-        if not seen[g]:
-            seen[g] = True
-            for j in range(k):
-                shift[g, j] = Z[i, j]
-        for c in range(C):
-            l = levels[i, c]
-            level_counts[g, l] += wi
-            for c2 in range(c, C):
-                l2 = levels[i, c2]
-                if l2 >= l:
-                    cross[l, l2] += wi
-                else:
-                    cross[l2, l] += wi
-            for j in range(k):
-                sums[l, j] += wi * (Z[i, j] - shift[g, j])
-
-
-@numba.njit(cache=True, nogil=True)
 def within_rows_levels(Z, codes, levels, w, state, level_counts, cross, sums, out):
-    """:func:`within_rows` and :func:`level_moments` in one sweep, with each key level's
+    """:func:`within_rows` and the (key level × indicator) moments in one sweep, with each key level's
     statistics in one row of ``state`` = [W_g, m_g (k), s_g (k)] (one cache line pair per row:
     with 10^5 levels the random accesses, not the arithmetic, set the cost)."""
     m, k = Z.shape

@@ -27,13 +27,14 @@ _INT = ctypes.c_int
 _PINT = ctypes.POINTER(_INT)
 
 
-@lru_cache(maxsize=1)
-def _dtpqrt_pointer():
-    """The ctypes function for dtpqrt in scipy's LAPACK, or None."""
+def scipy_routine(module: str, name: str, argtypes: tuple):
+    """A routine of scipy's BLAS or LAPACK (``module`` "cython_blas" or "cython_lapack") as a
+    ctypes function with the given argument types (ctypes releases the GIL during the call), or
+    None when this scipy build does not expose it."""
     try:
-        from scipy.linalg import cython_lapack
+        import importlib
 
-        capsule = cython_lapack.__pyx_capi__["dtpqrt"]
+        capsule = importlib.import_module(f"scipy.linalg.{module}").__pyx_capi__[name]
         get_name = ctypes.pythonapi.PyCapsule_GetName
         get_name.restype, get_name.argtypes = ctypes.c_char_p, [ctypes.py_object]
         get_ptr = ctypes.pythonapi.PyCapsule_GetPointer
@@ -43,9 +44,14 @@ def _dtpqrt_pointer():
         return None
     if not address:  # pragma: no cover
         return None
+    return ctypes.CFUNCTYPE(None, *argtypes)(address)
+
+
+@lru_cache(maxsize=1)
+def _dtpqrt_pointer():
+    """The ctypes function for dtpqrt in scipy's LAPACK, or None."""
     vp = ctypes.c_void_p
-    proto = ctypes.CFUNCTYPE(None, _PINT, _PINT, _PINT, _PINT, vp, _PINT, vp, _PINT, vp, _PINT, vp, _PINT)
-    return proto(address)
+    return scipy_routine("cython_lapack", "dtpqrt", (_PINT, _PINT, _PINT, _PINT, vp, _PINT, vp, _PINT, vp, _PINT, vp, _PINT))
 
 
 class TileFolder:
