@@ -72,6 +72,16 @@ def test_shuffled_order_is_a_permutation():
             assert np.array_equal(np.sort(o), np.arange(m))
 
 
+def test_window_shuffle_keeps_windows_together_and_mixes_them():
+    o = shuffled_order(5000, np.random.default_rng(1), "window", window=1000)
+    windows = o.reshape(5, 1000) // 1000
+    assert all((w == w[0]).all() for w in windows)  # each run of 1000 rows is one window
+    assert sorted(windows[:, 0]) == list(range(5)) and list(windows[:, 0]) != list(range(5))
+    assert not np.array_equal(o[:1000], np.sort(o[:1000]))  # rows shuffled within
+    again = shuffled_order(5000, np.random.default_rng(1), "window", window=1000)
+    assert np.array_equal(o, again)  # seeded: reproducible
+
+
 @pytest.fixture(scope="module")
 def well_conditioned():
     rng = np.random.default_rng(5)  # invented data, property test

@@ -24,6 +24,7 @@ import numpy as np
 
 from tallfit.design.spec import ModelSpec
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
+from tallfit.engine.parallel import BufferPool
 from tallfit.errors import OutputError
 
 CACHE_DTYPES = {"float64": np.float64, "float32": np.float32}
@@ -136,8 +137,11 @@ class DesignPasses:
         writer = self._open_cache()
         complete = False
         try:
-            for block in design_blocks(self.source, self.spec, self.batch_rows, self.progress, coding=self.coding):
+            pool = BufferPool()  # blocks are handed back once the solver has moved on (no page faults per block)
+            for block in design_blocks(self.source, self.spec, self.batch_rows, self.progress, coding=self.coding,
+                                       pool=pool):
                 if not block.n_used:
+                    pool.give(block.A)
                     continue
                 if writer is not None:
                     try:
@@ -146,6 +150,7 @@ class DesignPasses:
                         self._drop_cache(f"disabled while writing ({exc.strerror or exc}); streaming from the source")
                         writer = None
                 yield block.A
+                pool.give(block.A)  # the solver is done with it (solvers never keep a block)
             complete = True
         finally:
             if writer is not None:

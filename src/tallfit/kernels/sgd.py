@@ -157,3 +157,45 @@ def sgd_block_reference(X, y, order, shift, inv_scale, c, v, cbar, state, batch_
         if k < trace.shape[0]:
             trace[k] = c
         state[3] += 1.0
+
+
+@numba.njit(cache=True, nogil=True)
+def _next(state):
+    """SplitMix64 (Steele, Lea & Flood, OOPSLA 2014): the next state and a 64-bit draw."""
+    state = state + np.uint64(0x9E3779B97F4A7C15)
+    z = state
+    z = (z ^ (z >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+    z = (z ^ (z >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+    return state, z ^ (z >> np.uint64(31))
+
+
+@numba.njit(cache=True, nogil=True)
+def _shuffle(a, lo, hi, state):
+    """Fisher–Yates shuffle of a[lo:hi] in place; returns the generator state."""
+    for i in range(hi - 1, lo, -1):
+        state, r = _next(state)
+        j = lo + np.int64(r % np.uint64(i - lo + 1))
+        t = a[i]
+        a[i] = a[j]
+        a[j] = t
+    return state
+
+
+@numba.njit(cache=True, nogil=True)
+def window_order(m, window, seed):
+    """Rows 0..m-1 with the windows of `window` consecutive rows in a random order and the rows
+    within each window shuffled (the tail after the last whole window too), from one seed."""
+    state = np.uint64(seed)
+    nt = m // window
+    wins = np.arange(nt)
+    state = _shuffle(wins, 0, nt, state)
+    order = np.empty(m, dtype=np.int64)
+    for t in range(nt):
+        base = wins[t] * window
+        for u in range(window):
+            order[t * window + u] = base + u
+        state = _shuffle(order, t * window, (t + 1) * window, state)
+    for i in range(nt * window, m):
+        order[i] = i
+    _shuffle(order, nt * window, m, state)
+    return order

@@ -28,7 +28,7 @@ from collections.abc import Callable, Iterable
 import numpy as np
 
 from tallfit.errors import DesignError
-from tallfit.kernels.sgd import CONSTANT, INVERSE, sgd_block
+from tallfit.kernels.sgd import CONSTANT, INVERSE, sgd_block, window_order
 from tallfit.solve.iterative.problem import Problem
 from tallfit.solve.iterative.stopping import GrowthGuard, History, RunResult, check_finite
 
@@ -49,15 +49,11 @@ def auto_rate(problem: Problem, batch_size: int) -> float:
 
 
 def shuffled_order(m: int, rng: np.random.Generator, shuffle: str, window: int = SHUFFLE_WINDOW) -> np.ndarray:
-    """The row order of one block for one epoch (a permutation of 0..m-1)."""
+    """The row order of one block for one epoch (a permutation of 0..m-1): for "window", windows
+    in a random order and rows shuffled within each (kernels.sgd.window_order, seeded from rng)."""
     if shuffle == "rows" or m <= window:
         return rng.permutation(m)
-    nt = m // window
-    inner = rng.permuted(np.broadcast_to(np.arange(window), (nt, window)), axis=1)
-    order = (inner + (rng.permutation(nt) * window)[:, None]).ravel()
-    if nt * window < m:
-        order = np.concatenate([order, nt * window + rng.permutation(m - nt * window)])
-    return order
+    return window_order(m, window, int(rng.integers(0, 2**63 - 1)))
 
 
 def _shuffle_mode(shuffle) -> str:
