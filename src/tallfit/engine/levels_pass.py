@@ -78,54 +78,22 @@ def structured_pass(source, spec: ModelSpec, batch_rows: int, progress, design: 
 
 def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int | None):
     """Every part on its own (W threads), merged in part order as each finishes its turn."""
-    from tallfit.engine.parallel import offset_progress, run_tasks, worker_count
-    from tallfit.engine.passes import PART_PREFETCH
+    from tallfit.engine.parallel import OrderedMerge, offset_progress, read_part, run_tasks, worker_count
 
     w = worker_count(workers)
     lock = threading.Lock()
-    fold = _OrderedFold(_merge)
+    fold = OrderedMerge(_merge)
 
     def task(index: int, sub, file_index: int):
         def run() -> None:
-            sub.decode_threads = w == 1  # several workers: each decodes on its own core
             hook = offset_progress(progress, file_index, lock)
             acc = _stream_pass(sub, spec, batch_rows, hook, Design(spec, structured=True),
-                               prefetch=PART_PREFETCH if w == 1 else 0)
-            fold.add(index, acc)
+                               prefetch=read_part(sub, w))
+            fold.put(index, acc)
         return run
 
     run_tasks([task(i, sub, f) for i, (sub, f) in enumerate(parts)], w)
     return fold.result()
-
-
-class _OrderedFold:
-    """Merges results handed in by index, in index order (acc = merge(acc, next)), as soon as
-    the next one is there; results ahead of their turn wait. One merge at a time."""
-
-    def __init__(self, merge) -> None:
-        self.merge = merge
-        self.acc = None
-        self.next = 0
-        self.waiting: dict[int, object] = {}
-        self._lock = threading.Lock()
-        self._merging = threading.Lock()
-
-    def add(self, index: int, item) -> None:
-        with self._lock:
-            self.waiting[index] = item
-        with self._merging:
-            while True:
-                with self._lock:
-                    item = self.waiting.pop(self.next, None)
-                    if item is None:
-                        return
-                    self.next += 1
-                self.acc = item if self.acc is None else self.merge(self.acc, item)
-
-    def result(self):
-        if self.waiting:
-            raise RuntimeError("a part's result is missing")  # pragma: no cover - run_tasks raised first
-        return self.acc
 
 
 def _merge(a, b):

@@ -216,6 +216,49 @@ def run_tasks(tasks: Sequence[Callable[[], T]], workers: int) -> list[T]:
 SPAN_ROWS = 1 << 18
 
 
+#: Blocks read ahead per part when one worker reads every part (several workers decode and fold
+#: in turn, one per core, with nothing read ahead).
+PART_PREFETCH = 2
+
+
+def read_part(sub, workers: int) -> int:
+    """Prepare a part for its worker: with several workers each decodes on its own core (no
+    decoding threads of the reader's own). Returns the read-ahead to give ``design_blocks``."""
+    sub.decode_threads = workers == 1
+    return PART_PREFETCH if workers == 1 else 0
+
+
+class OrderedMerge:
+    """Merges per-part results handed in by part index, in part order (acc = merge(acc, next)), as
+    soon as the next one is there; results ahead of their turn wait. One merge at a time, so a
+    worker handing in a result is not held up by another's merge. Thread-safe."""
+
+    def __init__(self, merge: Callable[[Any, Any], Any]) -> None:
+        self.merge = merge
+        self.acc: Any = None
+        self.next = 0
+        self.waiting: dict[int, Any] = {}
+        self._lock = threading.Lock()
+        self._merging = threading.Lock()
+
+    def put(self, index: int, item: Any) -> None:
+        with self._lock:
+            self.waiting[index] = item
+        with self._merging:
+            while True:
+                with self._lock:
+                    item = self.waiting.pop(self.next, None)
+                    if item is None:
+                        return
+                    self.next += 1
+                self.acc = item if self.acc is None else self.merge(self.acc, item)
+
+    def result(self) -> Any:
+        if self.waiting or self.acc is None:
+            raise RuntimeError("a part's result is missing")  # pragma: no cover - run_tasks raised first
+        return self.acc
+
+
 def source_parts(source, span_rows: int | None = None) -> list | None:
     """(part, file index) pairs of a Source that has at least two parts (files or row-group runs), else None."""
     from tallfit.sources.base import Source

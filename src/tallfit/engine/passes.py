@@ -23,7 +23,7 @@ from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec
 from tallfit.engine.gram_accumulator import GramAccumulator
-from tallfit.engine.parallel import (BufferPool, fold_round_robin, offset_progress, part_workers, run_tasks,
+from tallfit.engine.parallel import (BufferPool, fold_round_robin, offset_progress, part_workers, read_part, run_tasks,
                                      source_parts, tree_merge, worker_count)
 from tallfit.errors import DataSourceError
 from tallfit.kernels.gram import SAFE_DIGITS
@@ -39,8 +39,6 @@ WIDE_K = 48
 #: lie a power of two apart and share cache sets while a tile is factored in place (measured at
 #: k = 22: ≈ 80 → 71 ns per row with 64 spare rows).
 QR_PAD_ROWS = 64
-#: Blocks read ahead per part with one worker (several workers decode and fold in turn, one per core).
-PART_PREFETCH = 2
 
 
 def check_method(method: str) -> str:
@@ -94,9 +92,8 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
             def run():
                 acc = make()
                 hook = offset_progress(progress, file_index, lock)
-                sub.decode_threads = w == 1  # several workers: each decodes on its own core
                 for block in design_blocks(sub, spec, rows, hook, design=Design(spec), pool=pool,
-                                           prefetch=PART_PREFETCH if w == 1 else 0):
+                                           prefetch=read_part(sub, w)):
                     fold_and_return(acc, block)
                 return acc
             return run

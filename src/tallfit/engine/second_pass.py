@@ -6,13 +6,13 @@ sketch and the rows with the largest residuals and leverages (engine/pass_sums.p
 per block and how parts merge; this module: the scan and its schedule).
 
 Parallel: a data set of several parts (files, runs of Parquet row groups) is scanned part by part
-on every core, each part into its own sums, merged in part order by a fixed-shape tree, so the
-result does not depend on the number of workers. The bin grids are set from the first rows of the
+on every core, each part into its own sums, merged in part order (engine.parallel.OrderedMerge), so
+the result does not depend on the number of workers. The bin grids are set from the first rows of the
 data (up to ``SAMPLE_ROWS``, read before the parts start and then folded by their own part), so
 every part bins on the same grid and the grids are those of a single ordered scan.
 
 Memory: a few batches per worker, plus O(clusters × terms) for cluster sums and fixed-size
-histograms per part being merged (at most about log₂(parts) + workers at a time).
+histograms per part alive (the running merge, one per worker, and parts done ahead of their turn).
 """
 
 from __future__ import annotations
@@ -22,7 +22,8 @@ from collections.abc import Sequence
 from typing import Any
 
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
-from tallfit.engine.parallel import BufferPool, offset_progress, run_tasks, source_parts, worker_count
+from tallfit.engine.parallel import (BufferPool, OrderedMerge, offset_progress, read_part, run_tasks, source_parts,
+                                     worker_count)
 from tallfit.engine.pass_sums import HEAT_CELLS, PartSums, PassPlan, SecondPass
 from tallfit.errors import DesignError
 from tallfit.kernels.lapack_calls import single_blas_thread
@@ -32,36 +33,6 @@ __all__ = ["HEAT_CELLS", "SAMPLE_ROWS", "SecondPass", "TOP_K", "second_pass"]
 
 SAMPLE_ROWS = 131_072
 TOP_K = 10
-
-
-class _OrderedMerge:
-    """Merges per-part results in part order as they complete, by a binary-counter tree whose
-    shape depends only on the number of parts; holds about log₂(parts) + workers results."""
-
-    def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._done: dict[int, PartSums] = {}
-        self._next = 0
-        self._stack: list[tuple[int, PartSums]] = []
-
-    def put(self, i: int, part: PartSums) -> None:
-        part.release()
-        with self._lock:
-            self._done[i] = part
-            while self._next in self._done:
-                item = (1, self._done.pop(self._next))
-                self._next += 1
-                while self._stack and self._stack[-1][0] == item[0]:
-                    size, left = self._stack.pop()
-                    item = (size + item[0], left.absorb(item[1]))
-                self._stack.append(item)
-
-    def result(self) -> PartSums:
-        size, acc = self._stack.pop()
-        while self._stack:
-            _, left = self._stack.pop()
-            acc = left.absorb(acc)
-        return acc
 
 
 def _scan(plan: PassPlan, source, blocks) -> PartSums:
@@ -96,9 +67,8 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
 
     def stream(i: int):
         sub, file_index = parts[i]
-        sub.decode_threads = w == 1  # several workers: each decodes on its own core
         return iter(design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
-                                  extra_columns=extra, coding=coding, pool=pool, prefetch=2 if w == 1 else 0))
+                                  extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w)))
 
     started: dict[int, Any] = {}
     held: dict[int, list] = {}
@@ -116,7 +86,7 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
             if rows >= SAMPLE_ROWS:
                 break
         plan.set_grids(sample, whole=rows < SAMPLE_ROWS)
-    merged = _OrderedMerge()
+    merged = OrderedMerge(lambda a, b: a.absorb(b))
 
     def task(i: int):
         def run() -> None:
@@ -125,6 +95,7 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
                 part.fold(block)
             for block in started.pop(i, None) or stream(i):
                 part.fold(block)
+            part.release()
             merged.put(i, part)
         return run
 

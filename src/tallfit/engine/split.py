@@ -87,18 +87,17 @@ def _positioned_parts(source, spec: ModelSpec) -> list | None:
 def _accumulate_split_parts(parts, spec: ModelSpec, plan: FoldPlan, batch_rows: int, progress) -> FoldAccumulators:
     import threading
 
-    from tallfit.engine.parallel import offset_progress, part_workers, run_tasks, tree_merge
+    from tallfit.engine.parallel import offset_progress, part_workers, read_part, run_tasks, tree_merge
 
     lock = threading.Lock()
     w = part_workers(None, len(spec.term_names) + 1)
 
     def task(sub, file_index: int, first_row: int):
         def run() -> FoldAccumulators:
-            sub.decode_threads = w == 1
             accs = FoldAccumulators.create(spec.term_names + [spec.target], plan)
             hook = offset_progress(progress, file_index, lock)
             _fill(accs, split_blocks(sub, spec, plan, batch_rows, hook, first_row=first_row,
-                                     prefetch=2 if w == 1 else 0), plan)
+                                     prefetch=read_part(sub, w)), plan)
             return accs
         return run
 
