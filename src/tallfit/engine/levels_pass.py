@@ -41,8 +41,6 @@ def _dense(block, design: Design, at_least: list[int]) -> tuple[np.ndarray, list
     """The dense design rows [1 | X | D | y]·√w of a structured block (after a fallback) and
     their names, with the levels known when the block was made (the reader runs ahead), but at
     least ``at_least`` levels per column (those the factor already has)."""
-    from tallfit.design.spec import indicator_name
-
     spec = design.spec
     A = block.A
     parts = [np.ones((A.shape[0], 1))] if spec.has_intercept_column else []
