@@ -102,7 +102,7 @@ class AbsorbAccumulator:
         G = self.coder.n_columns
         self.state = grow_rows(self.state, G)
         w = getattr(block, "row_weights", None)
-        if w is not None and not hasattr(block, "codes"):  # a dense block, rows scaled by √w
+        if w is not None and block.codes is None:  # a dense block, rows scaled by √w
             A = np.asfortranarray(A / np.sqrt(w)[:, None])
         w = np.zeros(0) if w is None else w
         if m:

@@ -29,6 +29,10 @@ class DesignBlock:
     weight_log_sum: float | None = None
     level_counts: dict[str, dict[str, int]] | None = None  # rows per categorical level
     filled: dict[str, int] = field(default_factory=dict)  # values filled per column
+    # structured designs (Design(structured=True)): A holds [features | y] unweighted, and these
+    row_weights: np.ndarray | None = None  # each used row's weight (also set for weighted dense designs)
+    codes: list[np.ndarray] | None = None  # per categorical column, each used row's level code
+    level_sizes: list[int] | None = None  # per categorical column, levels known when the block was made
 
     @property
     def n_used(self) -> int:
