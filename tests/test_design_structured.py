@@ -58,9 +58,12 @@ def test_structured_pass_equals_dense_indicator_pass(kw):
     fast = tallfit.fit(table, "invest", ["value", "capital"], batch_rows=23, **kw)
     dense = _dense_fit(table, "invest", ["value", "capital"], batch_rows=23, **kw)
     assert fast.terms == dense.terms
-    for a, b in [(fast.inference.estimate, dense.inference.estimate),
-                 (fast.inference.std_error, dense.inference.std_error)]:
-        np.testing.assert_allclose(a, b, rtol=1e-9)
+    # Estimates near zero (a year effect of 1.2 with a standard error of 21) differ by rounding
+    # that depends on the BLAS kernels of the machine: judge them on the scale of their own
+    # standard errors, and the standard errors relative to themselves.
+    se = dense.inference.std_error
+    np.testing.assert_array_less(np.abs(fast.inference.estimate - dense.inference.estimate), 1e-9 * se)
+    np.testing.assert_allclose(fast.inference.std_error, se, rtol=1e-9)
     assert fast.inference.df_resid == dense.inference.df_resid
     np.testing.assert_allclose(fast.inference.r_squared, dense.inference.r_squared, rtol=1e-10)
 
