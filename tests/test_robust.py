@@ -46,7 +46,7 @@ def grunfeld():
 
 def _ours(table, target, feats, batch_rows=7, cluster=(), selected="HC3"):
     model = tallfit.fit(table, target=target, features=feats, batch_rows=batch_rows)
-    sp = second_pass(model, table, cluster=cluster, diagnostics=False, batch_rows=batch_rows)
+    sp = second_pass(model, table, cluster=cluster, robust=selected, diagnostics=False, batch_rows=batch_rows)
     return model, robust_for_model(model, sp.sandwich, sp.clusters, selected)
 
 
@@ -74,6 +74,26 @@ def test_hc_matches_statsmodels(kind, dataset, grunfeld):
     _close(est["ci_low"], ci[:, 0])
     _close(est["ci_high"], ci[:, 1])
     assert est["df"] == ref.df_resid
+
+
+@pytest.mark.parametrize("dataset", ["grunfeld", "fair"])
+def test_all_four_from_one_pass_match_statsmodels(dataset, grunfeld):
+    """robust="all" sums [w | d·w] once and forms every HC meat from its blocks."""
+    if dataset == "grunfeld":
+        table, X, y, _, _ = grunfeld
+        target, feats = "invest", ["value", "capital"]
+    else:
+        d = sm.datasets.fair.load_pandas().data
+        feats = ["rate_marriage", "age", "yrs_married", "children", "religious", "educ"]
+        target = "affairs"
+        table = pa.table({c: d[c].to_numpy(float) for c in feats + [target]})
+        X, y = sm.add_constant(d[feats].to_numpy(float)), d[target].to_numpy(float)
+    _, r = _ours(table, target, feats, batch_rows=300, selected="all")
+    assert r["selected"] == "HC3" and sorted(r["estimators"]) == ["HC0", "HC1", "HC2", "HC3"]
+    for kind in ("HC0", "HC1", "HC2", "HC3"):
+        _close(r["estimators"][kind]["covariance"], sm.OLS(y, X).fit(cov_type=kind).cov_params())
+    _, one = _ours(table, target, feats, batch_rows=300, selected="HC2")
+    assert sorted(one["estimators"]) == ["HC2"]
 
 
 def test_one_way_cluster_matches_statsmodels(grunfeld):
@@ -130,7 +150,7 @@ def test_fit_with_robust_option_and_model_file(tmp_path, grunfeld):
     tallfit.save(model, path)
     back = tallfit.load(path)
     assert back.robust["selected"] == "cluster:firm"
-    _close(back.robust["estimators"]["HC3"]["covariance"], model.robust["estimators"]["HC3"]["covariance"], rtol=0)
+    _close(back.robust["estimators"]["HC1"]["covariance"], model.robust["estimators"]["HC1"]["covariance"], rtol=0)
     plain = tallfit.fit(table, target="invest", features=["value", "capital"])
     assert plain.robust is None and plain.to_dict()["robust"] is None
 

@@ -5,7 +5,7 @@ ordered scan (property tests on invented server telemetry), and its kernels agai
   whose shape depends only on the number of parts).
 * The parts' merged sums equal those of one ordered scan of the same rows to rounding, with the
   same bin grids (set from the same first rows), the same cluster numbering and the same top rows.
-* ``scores_and_leverage`` and ``times_upper`` against plain numpy / scipy solve_triangular.
+* ``tile_scores`` on [Z | e] from the plan's tile map against plain numpy / scipy solve_triangular.
 """
 
 from __future__ import annotations
@@ -19,9 +19,10 @@ from scipy.linalg import solve_triangular
 import tallfit
 from tallfit.diagnostics.assemble import build_diagnostics
 from tallfit.diagnostics.kernels import (
-    design_residuals, scores_and_leverage, scores_and_leverage_reference, times_upper,
+    SCORES, SCORES_ALL, SCORES_HC2, SCORES_HC3, tile_scores, tile_scores_reference,
 )
 from tallfit.diagnostics.residuals import TopRows
+from tallfit.engine.pass_sums import tile_map
 from tallfit.engine.second_pass import SAMPLE_ROWS, second_pass
 from tallfit.errors import DesignError
 from tallfit.solve.robust import robust_for_model
@@ -53,7 +54,7 @@ def fleet(tmp_path_factory):
 
 
 def _run(model, data, workers=None):
-    return second_pass(model, data, cluster=["host_id", "rack"], keep=["host_id"], top_k=7,
+    return second_pass(model, data, cluster=["host_id", "rack"], keep=["host_id"], top_k=7, robust="all",
                        batch_rows=BATCH, workers=workers)
 
 
@@ -132,44 +133,39 @@ def test_top_rows_merge_equals_one_update():
     np.testing.assert_array_equal(merged.values, whole.values)
 
 
-def test_score_kernels_match_numpy():
+@pytest.mark.parametrize("mode", [SCORES, SCORES_HC2, SCORES_HC3, SCORES_ALL])
+def test_tile_product_and_score_kernel_match_numpy(mode):
     rng = np.random.default_rng(8)
-    m, p = 777, 5
+    m, p, k = 777, 5, 7  # 7 design columns, of which the model keeps 5 (cols), then the target
     R = np.asfortranarray(np.triu(rng.normal(size=(p, p))) + 3 * np.eye(p))
-    A = np.asfortranarray(np.column_stack([rng.normal(size=(m, p)), rng.normal(size=m)]))
+    A = np.asfortranarray(rng.normal(size=(m, k + 1)))
+    cols = np.array([0, 2, 3, 5, 6])
     beta = rng.normal(size=p)
-    X, fitted, e = np.empty((m - 100, p), order="F"), np.full(m, np.nan), np.full(m, np.nan)
-    design_residuals(A, 100, m, np.arange(p), beta, X, fitted, e)
-    np.testing.assert_array_equal(X, A[100:, :p])
-    np.testing.assert_allclose(e[100:], A[100:, p] - A[100:, :p] @ beta, rtol=1e-13, atol=1e-13)
-    assert np.isnan(e[:100]).all()
-    Rinv = np.asfortranarray(np.triu(np.linalg.inv(R)))
-    Z = times_upper(Rinv, X)  # Z R = X
-    np.testing.assert_allclose(Z, solve_triangular(R, A[100:, :p].T, trans="T").T, rtol=1e-12, atol=1e-14)
-    B = A.copy(order="F")
-    times_upper(Rinv, B, 100, m)  # rows 100.. of B's first p columns, in place; the rest untouched
-    np.testing.assert_array_equal(B[:100], A[:100])
-    np.testing.assert_array_equal(B[:, p], A[:, p])
-    np.testing.assert_allclose(B[100:, :p], Z, rtol=1e-14, atol=1e-15)
-    Z = np.asfortranarray(Z / 30.0)
-    Z[3] = 0.0
-    Z[3, 0] = 1.0  # a row of leverage 1: d = ∞ in the HC2/HC3 columns, as the reference says
-    ee = e[100:].copy()
-    V, h, g, s = np.empty((len(Z), 2 * p), order="F"), np.empty(len(Z)), np.zeros(p), np.zeros(p)
-    scores_and_leverage(Z, 0, len(Z), ee, V, h, g, s)
-    Vr, hr, sr, gr = scores_and_leverage_reference(Z, ee)
-    # the same on a row range of a taller matrix, e and h indexed like its rows
-    Zt = np.asfortranarray(np.vstack([np.ones((50, p)), Z, np.ones((9, p))]))
-    et, ht = np.concatenate([np.zeros(50), ee, np.zeros(9)]), np.full(len(Zt), -1.0)
-    Vt, gt, st = np.empty_like(V), np.zeros(p), np.zeros(p)
-    scores_and_leverage(Zt, 50, 50 + len(Z), et, Vt, ht, gt, st)
-    np.testing.assert_array_equal(ht[50:50 + len(Z)], h)
-    assert (ht[:50] == -1).all() and (ht[50 + len(Z):] == -1).all()
-    np.testing.assert_array_equal(Vt, V)
-    np.testing.assert_allclose(h, hr, rtol=1e-14)
-    np.testing.assert_allclose(V[:, :p], Vr[:, :p], rtol=1e-15)
-    finite = np.isfinite(Vr)
-    np.testing.assert_allclose(V[finite], Vr[finite], rtol=1e-13)
-    assert np.array_equal(np.isfinite(V), finite)
+    M = tile_map(np.asfortranarray(np.triu(np.linalg.inv(R))), cols, beta, k + 1)
+    ZE = np.asfortranarray(A[100:] @ M)
+    X = A[100:, cols]
+    np.testing.assert_allclose(ZE[:, :p], solve_triangular(R, X.T, trans="T").T, rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(ZE[:, p], A[100:, k] - X @ beta, rtol=1e-12, atol=1e-13)
+    ZE[:, :p] /= 30.0
+    ZE[3, :p] = 0.0
+    ZE[3, 0] = 1.0  # a row of leverage 1: ∞ in the HC2/HC3 rows, as the reference says
+    Z, ee = ZE[:, :p].copy(), ZE[:, p].copy()
+    Vr, hr, Wr, sr, gr = tile_scores_reference(Z, ee, mode)
+    # the tile is rows 100.. of the block: e, fitted and h are indexed like the block's rows
+    n = m - 100
+    V = np.empty((n, Vr.shape[1] if mode != SCORES else 0), order="F")
+    e, fitted, h = np.full(m, np.nan), np.full(m, np.nan), np.full(m, np.nan)
+    g, s = np.zeros(p), np.zeros(p)
+    y = np.asfortranarray(A)[:, k]
+    tile_scores(ZE, n, 100, y, mode, V, e, fitted, h, g, s)
+    assert np.isnan(e[:100]).all() and np.isnan(h[:100]).all()
+    np.testing.assert_array_equal(e[100:], ee)
+    np.testing.assert_allclose(fitted[100:], y[100:] - ee, rtol=1e-15)
+    np.testing.assert_allclose(h[100:], hr, rtol=1e-14)
+    np.testing.assert_allclose(ZE[:, :p], Wr, rtol=1e-15)  # the scores, in place
+    if mode != SCORES:
+        finite = np.isfinite(Vr)
+        np.testing.assert_allclose(V[finite], Vr[finite], rtol=1e-13)
+        assert np.array_equal(np.isfinite(V), finite)
     np.testing.assert_allclose(s, sr, rtol=1e-12)
     np.testing.assert_allclose(g, gr, rtol=1e-12)

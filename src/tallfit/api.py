@@ -118,9 +118,10 @@ def fit(
         as a dict, plus ``cache`` (bool) and ``spill_dir`` for a local cache of the decoded design.
         The result's notes say how far it is from the exact answer.
     robust, cluster
-        ``"HC0"``…``"HC3"`` and/or one or two key columns (``"host_id"`` or ``"host_id,day"``):
-        one more pass computes robust (clustered) standard errors, kept in ``result.robust`` and
-        shown beside the plain ones (see ``tallfit.solve.robust``).
+        ``"HC0"``…``"HC3"`` (or ``"all"``: the four, a slower pass) and/or one or two key columns
+        (``"host_id"`` or ``"host_id,day"``): one more pass computes robust (clustered) standard
+        errors, kept in ``result.robust`` and shown beside the plain ones (see
+        ``tallfit.solve.robust``).
     workers
         Threads that read and fold in parallel (default: every core); results agree to rounding
         whatever the number.
@@ -232,7 +233,7 @@ def diagnose(
     if not isinstance(model, (FitResult, GroupedFit)):
         model = load_model(model)
     source = as_source(data, format=format, delimiter=delimiter)
-    sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep),
+    sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep), robust=robust,
                      batch_rows=batch_rows, progress=progress)
     if same_data(model, sp):
         model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust)

@@ -25,7 +25,7 @@ def with_robust(result: FitResult, source, robust, cluster, batch_rows, progress
     from tallfit.solve.robust import check_kind, robust_for_model
 
     check_kind(robust)
-    sp = second_pass(result, source, cluster=cluster_list(cluster), diagnostics=False,
+    sp = second_pass(result, source, cluster=cluster_list(cluster), robust=robust, diagnostics=False,
                      batch_rows=batch_rows, progress=progress)
     result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust)
     return result

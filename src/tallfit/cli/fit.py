@@ -34,7 +34,7 @@ def register(sub) -> None:
     f.add_argument("--level", type=float, default=0.95, help="confidence level of the intervals (default 0.95)")
     f.add_argument("--rank-tol", type=float, default=None, help="tolerance for calling a term aliased (default 1e-11)")
     f.add_argument("--json", action="store_true", help="print the result as JSON instead of the summary")
-    f.add_argument("--robust", type=str.upper, choices=["HC0", "HC1", "HC2", "HC3"], default=None, help="one more pass for heteroskedasticity-robust errors, shown beside the plain ones")
+    f.add_argument("--robust", type=str.upper, choices=["HC0", "HC1", "HC2", "HC3", "ALL"], default=None, help="one more pass for heteroskedasticity-robust errors, shown beside the plain ones (all: the four, a slower pass)")
     f.add_argument("--cluster", type=split_list, default=None, metavar="COLS", help="one more pass for errors clustered by one or two key columns (e.g. host_id or host_id,day)")
     add_design_options(f)
     f.add_argument("--solver", choices=["exact", "gd", "cg", "lbfgs", "sgd"], default="exact", help="exact (default) or an iterative solver run after the factor pass, one pass per iteration or epoch")

@@ -18,7 +18,7 @@ def register(sub) -> None:
     p.add_argument("model", help="model file")
     add_data_options(p)
     p.add_argument("--out", required=True, help="the HTML file to write (atomically); images go to <name>_files/ beside it")
-    p.add_argument("--robust", type=str.upper, choices=["HC0", "HC1", "HC2", "HC3"], default="HC3", help="robust errors to show beside the plain ones (default HC3)")
+    p.add_argument("--robust", type=str.upper, choices=["HC0", "HC1", "HC2", "HC3", "ALL"], default="HC3", help="robust errors to show beside the plain ones (default HC3; all: the four, a slower pass)")
     p.add_argument("--cluster", type=split_list, default=[], metavar="COLS", help="cluster errors by one or two key columns (e.g. host_id or host_id,day)")
     p.add_argument("--keep", type=split_list, default=[], metavar="COLS", help="id columns to list with the largest residuals and leverages")
     p.add_argument("--bins", type=int, default=20, metavar="N", help="bins per feature in the residual checks (default 20)")

@@ -1,11 +1,9 @@
 """Kernels of the second pass, each beside a plain-numpy reference used in tests.
 
-* ``design_residuals``: copies the model's columns of a row tile into a Fortran-order buffer (for
-  the in-place triangular product) and computes fitted values and residuals on the way.
-* ``times_upper``: X ← X T for an upper triangle T by BLAS dtrmm, called without the GIL (scipy's
-  wrapper keeps it, which serialised the workers).
-* ``scores_and_leverage``: from a tile of Z = X R11⁻¹ and e: leverages h = ‖zᵢ‖², the scores
-  w = e·z and d·w (d = h/(1 − h), for HC2/HC3), Σ w and the Breusch–Pagan sums Σ z e².
+* ``tile_scores``: from a row tile [Z | e] (one BLAS product of the design rows with the plan's
+  tile map gives Z = X R11⁻¹ and e = y − Xβ together), the fitted values, leverages
+  h = ‖zᵢ‖², the scores w = e·z, the sandwich rows of the chosen HC estimator, Σ w and the
+  Breusch–Pagan sums Σ z e².
 * ``grid_bin_sums`` (``grid_bin_sums_rows`` for a range of rows): per chosen column of a block,
   the cell of every row on a uniform grid and, per cell, the row count, Σx, Σe and Σe² (a multiply
   and a store per value: measured ≈ 2.5 ns per value here, against ≈ 13 ns for sample-quantile
@@ -16,17 +14,15 @@
 * ``grid_counts``: a 2-D histogram of two cell indices (fitted value × residual).
 * ``residual_moments``: Σ|e|, Σe², Σe³, Σe⁴, min, max and a histogram on a fixed grid.
 
-The pass runs the first four on row tiles that stay in the core's cache between steps (each step
-is bound by memory traffic when it sweeps a whole 10 MB block).
+The pass runs the product, ``tile_scores``, the sandwich Gram and the feature bins on row tiles
+that stay in the core's cache between steps (each step is bound by memory traffic when it sweeps
+a whole 10 MB block).
 
 A grid is (lo, scale, cells): cell 0 holds x < lo, cell k (1 ≤ k ≤ cells) holds
 lo + (k−1)/scale ≤ x < lo + k/scale, and cell cells + 1 everything above, so no row is lost.
 """
 
 from __future__ import annotations
-
-import ctypes
-from functools import lru_cache
 
 import numba
 import numpy as np
@@ -124,57 +120,65 @@ def residual_moments(e, lo, scale, cells, hist, sums):
     sums[5] = mx
 
 
-@numba.njit(cache=True, nogil=True)
-def design_residuals(A, r0, r1, cols, beta, X, fitted, e):
-    """For rows i = r0..r1-1 of A: X[i − r0, j] = A[i, cols[j]]; fitted[i] = X·beta; e[i] = A[i, -1] − fitted[i]."""
-    y = A[:, A.shape[1] - 1]
-    for i in range(r0, r1):
-        fitted[i] = 0.0
-    for j in range(cols.shape[0]):
-        a = A[:, cols[j]]  # 1-D column views: simpler loops than 2-D indexing (measured ≈ 10 % faster)
-        xj = X[:, j]
-        b = beta[j]
-        for i in range(r0, r1):
-            x = a[i]
-            xj[i - r0] = x
-            fitted[i] += x * b
-    for i in range(r0, r1):
-        e[i] = y[i] - fitted[i]
+# Sandwich rows per data row (solve.robust.SandwichSums.mode): the rows V whose Gram V'V is summed.
+SCORES = 0  # V = w (HC0, HC1): Z's own columns, which become the scores
+SCORES_HC2 = 2  # V = w / √(1 − h)
+SCORES_HC3 = 3  # V = w / (1 − h)
+SCORES_ALL = 4  # V = [w | d·w], d = h / (1 − h): every HC meat from one Gram
 
 
-# reassoc lets the two column sums use SIMD lanes (a fixed order for a given build: deterministic);
-# no flag that assumes finite values, since d = ∞ marks a row of leverage 1
+# reassoc lets the column sums use SIMD lanes (a fixed order for a given build: deterministic);
+# no flag that assumes finite values, since ∞ marks a row of leverage 1
 @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz"})
-def scores_and_leverage(Z, r0, r1, e, V, h, bp_g, score_sum):
-    """For rows i = r0..r1-1 of Z's first p = V.shape[1] / 2 columns (e and h indexed like Z's rows,
-    V from 0): h = ‖zᵢ‖²; V[:, :p] = e·z and V[:, p:] = d·e·z with d = h/(1 − h) (∞ for h ≥ 1);
-    score_sum += Σ e·z; bp_g += Σ e²·z."""
-    p = V.shape[1] // 2
-    m = r1 - r0
-    for i in range(r0, r1):
-        h[i] = 0.0
-    for j in range(p):
-        zj = Z[:, j]
-        for i in range(r0, r1):
-            h[i] += zj[i] * zj[i]
-    d = np.empty(m)
+def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
+    """From a tile ZE = [Z | e] (rows 0..m-1; Z = X R11⁻¹ and e = y − Xβ, one product of the design
+    rows with PassPlan.tile_map), for the block's rows r0..r0+m-1: e, fitted = y − e and the
+    leverage h = ‖zᵢ‖²; Z's columns become the scores w = e·z (in place) and V the sandwich rows
+    of ``mode`` (V unused for SCORES); score_sum += Σ w, bp_g += Σ e²·z (Breusch–Pagan)."""
+    p = ZE.shape[1] - 1
+    ev = ZE[:, p]
     for i in range(m):
-        hi = h[r0 + i]
-        d[i] = hi / (1.0 - hi) if hi < 1.0 else np.inf
+        r = ev[i]
+        e[r0 + i] = r
+        fitted[r0 + i] = y[r0 + i] - r
+        h[r0 + i] = 0.0
     for j in range(p):
-        zj = Z[:, j]
-        v0 = V[:, j]
-        v1 = V[:, p + j]
+        zj = ZE[:, j]
+        for i in range(m):
+            h[r0 + i] += zj[i] * zj[i]
+    c = np.empty(m)  # V's row multiplier (d for SCORES_ALL)
+    if mode != SCORES:
+        for i in range(m):
+            hi = h[r0 + i]
+            if hi >= 1.0:
+                c[i] = np.inf
+            elif mode == SCORES_HC2:
+                c[i] = 1.0 / np.sqrt(1.0 - hi)
+            elif mode == SCORES_HC3:
+                c[i] = 1.0 / (1.0 - hi)
+            else:
+                c[i] = hi / (1.0 - hi)
+    for j in range(p):
+        zj = ZE[:, j]
         s = 0.0
         g = 0.0
         for i in range(m):
-            w = zj[r0 + i] * e[r0 + i]
-            v0[i] = w
-            v1[i] = w * d[i]
+            w = zj[i] * ev[i]
+            zj[i] = w
             s += w
-            g += w * e[r0 + i]
+            g += w * ev[i]
         score_sum[j] += s
         bp_g[j] += g
+        if mode == SCORES_HC2 or mode == SCORES_HC3:
+            vj = V[:, j]
+            for i in range(m):
+                vj[i] = zj[i] * c[i]
+        elif mode == SCORES_ALL:
+            v0 = V[:, j]
+            v1 = V[:, p + j]
+            for i in range(m):
+                v0[i] = zj[i]
+                v1[i] = zj[i] * c[i]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -190,41 +194,6 @@ def square_moments(e):
         u = e[i] * e[i] - mean
         c += u * u
     return mean, c
-
-
-@lru_cache(maxsize=None)
-def _blas_pointer(name: str):
-    """A right-side triangular routine (dtrmm, dtrsm) of scipy's BLAS as a ctypes function (ctypes
-    releases the GIL during the call), or None."""
-    from tallfit.kernels.lapack_calls import scipy_routine
-
-    vp, pc, pi = ctypes.c_void_p, ctypes.c_char_p, ctypes.POINTER(ctypes.c_int)
-    return scipy_routine("cython_blas", name, (pc, pc, pc, pc, pi, pi, vp, vp, pi, vp, pi))
-
-
-_ONE = np.ones(1)
-
-
-def times_upper(T: np.ndarray, B: np.ndarray, r0: int = 0, r1: int | None = None) -> np.ndarray:
-    """Rows r0..r1-1 of B's first p columns ← themselves times T (upper triangular, p × p), in place
-    (BLAS dtrmm); B and T Fortran-ordered float64. Returns B."""
-    p = T.shape[0]
-    r1 = B.shape[0] if r1 is None else r1
-    if not (B.flags.f_contiguous and T.flags.f_contiguous and B.dtype == T.dtype == np.float64
-            and B.shape[1] >= p and 0 <= r0 <= r1 <= B.shape[0]):
-        raise ValueError("times_upper needs Fortran-ordered float64 arrays of matching shapes")
-    if r1 == r0 or p == 0:
-        return B
-    fn = _blas_pointer("dtrmm")
-    if fn is None:  # pragma: no cover - the scipy wrapper, which holds the GIL (and copies)
-        from scipy.linalg.blas import dtrmm
-
-        B[r0:r1, :p] = dtrmm(1.0, T, np.asfortranarray(B[r0:r1, :p]), side=1, lower=0)
-        return B
-    mi, pi, ldt, ldb = (ctypes.c_int(v) for v in (r1 - r0, p, p, B.shape[0]))
-    fn(b"R", b"U", b"N", b"N", ctypes.byref(mi), ctypes.byref(pi), _ONE.ctypes.data,
-       T.ctypes.data, ctypes.byref(ldt), B.ctypes.data + 8 * r0, ctypes.byref(ldb))
-    return B
 
 
 # -- plain references (tests compare the kernels with these) ----------------------------------
@@ -249,10 +218,13 @@ def scatter_rows_reference(codes: np.ndarray, W: np.ndarray, groups: int) -> np.
     return S
 
 
-def scores_and_leverage_reference(Z: np.ndarray, e: np.ndarray):
-    """(V, h, Σ e·z, Σ e²·z) by numpy, as ``scores_and_leverage`` computes them."""
+def tile_scores_reference(Z: np.ndarray, e: np.ndarray, mode: int):
+    """(V, h, w, Σ w, Σ e²·z) by numpy, as ``tile_scores`` computes them (V = w for SCORES)."""
     h = np.einsum("ij,ij->i", Z, Z)
     W = Z * e[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
-        d = np.where(h < 1.0, h / (1.0 - h), np.inf)
-        return np.hstack([W, W * d[:, None]]), h, W.sum(axis=0), W.T @ e
+        one = np.where(h < 1.0, 1.0 - h, 0.0)
+        c = {SCORES: np.ones_like(h), SCORES_HC2: 1.0 / np.sqrt(one), SCORES_HC3: 1.0 / one,
+             SCORES_ALL: np.where(h < 1.0, h / one, np.inf)}[mode]
+        V = np.hstack([W, W * c[:, None]]) if mode == SCORES_ALL else W * c[:, None]
+    return V, h, W, W.sum(axis=0), W.T @ e

@@ -1,10 +1,11 @@
 """The sums of the second pass for one part of the data: the shared plan (the model's columns,
 β, R11⁻¹, the options and the bin grids) and each part's running sums (create / fold / absorb).
 
-Per block of used rows, on row tiles that stay in a core's cache: residuals e = y − Xb and
-zᵢ = R11⁻ᵀxᵢ (Z = X R11⁻¹, one triangular product); one sweep (kernels.scores_and_leverage) gives
-the leverages hᵢ = ‖zᵢ‖², the scores and the Breusch–Pagan sums, and one BLAS product the HC0–HC3
-sandwich sums; cluster score sums for one key or two (and their pairs); binned residual sums per
+Per block of used rows, on row tiles that stay in a core's cache: one BLAS product of the tile's
+design rows with the plan's tile map gives [Z | e] together, zᵢ = R11⁻ᵀxᵢ and e = y − Xβ; one
+sweep (kernels.tile_scores) gives the fitted values, the leverages hᵢ = ‖zᵢ‖², the scores and
+the Breusch–Pagan sums, and one BLAS Gram the sandwich sums of the chosen HC estimator (or of all
+four); cluster score sums for one key or two (and their pairs); binned residual sums per
 feature; then per block the fitted-value bins, a fitted × residual histogram, the residual sketch
 (MAE, quantiles) and the rows with the largest residuals and leverages, with their pass-through
 id columns.
@@ -22,9 +23,7 @@ from scipy.linalg.lapack import dtrtri
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
-from tallfit.diagnostics.kernels import (
-    design_residuals, grid_counts, grid_index, scores_and_leverage, times_upper,
-)
+from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, grid_counts, grid_index, tile_scores
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
 from tallfit.engine.local import span_label
@@ -70,11 +69,22 @@ def _upper_inverse(R: np.ndarray) -> np.ndarray:
     return np.asfortranarray(np.triu(inv))
 
 
+def tile_map(R11_inv: np.ndarray, cols: np.ndarray, beta: np.ndarray, width: int) -> np.ndarray:
+    """M (width × (p + 1), Fortran order) with [Z | e] = A M for design rows A of ``width`` columns
+    (the design's, then the target): rows ``cols`` hold [R11⁻¹ | −β], the target's row (0, …, 0, 1)."""
+    p = len(cols)
+    M = np.zeros((width, p + 1), order="F")
+    M[np.ix_(cols, np.arange(p))] = R11_inv
+    M[cols, p] = -beta
+    M[width - 1, p] = 1.0
+    return M
+
+
 class PassPlan:
     """What every part shares: the model's columns, β, R11, the options, and the bin grids."""
 
     def __init__(self, model: FitResult, cluster: Sequence[str], keep: Sequence[str],
-                 diagnostics: bool, top_k: int) -> None:
+                 diagnostics: bool, top_k: int, robust: str | None = None) -> None:
         spec = model.spec
         names = model.accumulator.names[:-1]  # the fitted design's columns (indicators included)
         self.terms = list(model.terms)
@@ -83,11 +93,15 @@ class PassPlan:
         self.beta = np.ascontiguousarray(model.inference.estimate, dtype=float)
         Rr = reduce_factor(model.accumulator.R, list(self.cols))
         self.R11 = np.asfortranarray(Rr[: self.p, : self.p])
-        # Z = X R11⁻¹ by a triangular product with the inverse, not a solve per tile: dtrmm ran
-        # 2.5× faster than dtrsm here; LAPACK's triangular inverse has small componentwise
-        # residuals (Du Croz & Higham, IMA J. Numer. Anal. 12, 1992), and leverages and sandwiches
-        # still match statsmodels to 1e-10 / 1e-8 (tests/test_robust.py, test_diagnostics.py)
+        # Z = X R11⁻¹ by a product with the inverse, not a triangular solve per tile: one GEMM of
+        # the tile's design rows with tile_map gives Z and e at once (measured ≈ 2.5× less time
+        # than dtrmm, which runs at a few GFLOP/s on such skinny shapes, plus a column copy).
+        # LAPACK's triangular inverse has small componentwise residuals (Du Croz & Higham, IMA J.
+        # Numer. Anal. 12, 1992); leverages and sandwiches match statsmodels to 1e-10 / 1e-8
+        # (tests/test_robust.py, test_diagnostics.py)
         self.R11_inv = _upper_inverse(self.R11)
+        self.robust = robust
+        self._maps: dict[int, np.ndarray] = {}
         self.features = [f for f in spec.features if f in model.terms]
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
         self.intercept = bool(spec.intercept and names[0] in model.terms)
@@ -102,6 +116,13 @@ class PassPlan:
         self.feature_grid: Grid | None = None
         self.fitted_grid: Grid | None = None
         self.heat_axes: dict[str, Any] = {}
+
+    def tile_map(self, width: int) -> np.ndarray:
+        """``tile_map`` for design rows of ``width`` columns (kept per width)."""
+        M = self._maps.get(width)
+        if M is None:
+            M = self._maps[width] = tile_map(self.R11_inv, self.cols, self.beta, width)
+        return M
 
     @property
     def ready(self) -> bool:
@@ -131,7 +152,7 @@ class PartSums:
         self.plan, self.source, self.pool = plan, source, pool
         p = plan.p
         self.out = out = SecondPass(terms=list(plan.terms), features=list(plan.features))
-        out.sandwich = SandwichSums.create(p)
+        out.sandwich = SandwichSums.create(p, plan.robust)
         out.breusch_pagan = BreuschPaganSums.create(p, plan.intercept)
         self.coders = [KeyCoder(c) for c in plan.cluster]
         self.pairs = PairCoder(f"{plan.cluster[0]}×{plan.cluster[1]}") if len(plan.cluster) == 2 else None
@@ -153,13 +174,14 @@ class PartSums:
         out.heat_axes = dict(plan.heat_axes)
 
     def _tile(self, rows: int) -> tuple[np.ndarray, np.ndarray]:
-        """Reused tile buffers: X/Z (rows × p, Fortran order, for the in-place product) and V (rows × 2p)."""
+        """Reused tile buffers (Fortran order): [Z | e] (rows × (p + 1)) and the sandwich rows V."""
         bufs = self._tiles.get(rows)
         if bufs is None:
             if len(self._tiles) >= 4:  # full tiles and a few block ends: keep it bounded
                 self._tiles.clear()
-            p = self.plan.p
-            bufs = self._tiles[rows] = (np.empty((rows, p), order="F"), np.empty((rows, 2 * p), order="F"))
+            p, mode = self.plan.p, self.out.sandwich.mode
+            q = 0 if mode == SCORES else 2 * p if mode == SCORES_ALL else p
+            bufs = self._tiles[rows] = (np.empty((rows, p + 1), order="F"), np.empty((rows, q), order="F"))
         return bufs
 
     def _rows(self, m: int) -> tuple[np.ndarray, ...]:
@@ -196,18 +218,21 @@ class PartSums:
         bin_here = plan.diagnostics and not plan.weighted
         # every step on a tile of rows while it is in cache (measured ≈ 15 % less CPU than sweeping
         # whole blocks step by step: each sweep of a 10 MB block is bound by memory traffic)
+        M = plan.tile_map(A.shape[1])
+        y = A[:, A.shape[1] - 1]
+        mode = sandwich.mode
         for a in range(0, m, TILE_ROWS):
             b = min(a + TILE_ROWS, m)
-            X, V = self._tile(b - a)
-            design_residuals(A, a, b, plan.cols, plan.beta, X, fitted, e)
+            ZE, V = self._tile(b - a)
+            np.matmul(A[a:b], M, out=ZE)  # [Z | e], BLAS without the GIL
+            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum)
             if bin_here:  # A's rows of this tile are still in cache
                 out.feature_bins.update(A, e, plan.fcols, ka, rows=(a, b))
-            times_upper(plan.R11_inv, X)  # Z = X R11⁻¹, in place
-            scores_and_leverage(X, 0, b - a, e[a:b], V, h[a:b], bp.g, sandwich.score_sum)
-            sandwich.add_scores(V)
+            W = ZE[:, :p]  # the scores
+            sandwich.add_rows(W if mode == SCORES else V)
             for c, sums, g in zip(codes, out.clusters, groups):
-                sums.update(c[a:b], V[:, :p], g)
-        sandwich.add_rows(e, h)
+                sums.update(c[a:b], W, g)
+        sandwich.add_residuals(e, h)
         bp.add_squares(e)
         out.n_used += m
         if plan.diagnostics:

@@ -1,6 +1,6 @@
 """The second pass: one bounded-memory scan with the fitted model, for everything residuals give.
 
-It gives the HC0–HC3 sandwich sums, cluster score sums for one key or two, Breusch–Pagan sums,
+It gives the sandwich sums of the chosen HC estimator (HC0–HC3, or all four), cluster score sums for one key or two, Breusch–Pagan sums,
 binned residuals per feature and per fitted value, a fitted × residual histogram, the residual
 sketch and the rows with the largest residuals and leverages (engine/pass_sums.py: what is summed
 per block and how parts merge; this module: the scan and its schedule).
@@ -28,6 +28,7 @@ from tallfit.engine.pass_sums import HEAT_CELLS, PartSums, PassPlan, SecondPass
 from tallfit.errors import DesignError
 from tallfit.kernels.lapack_calls import single_blas_thread
 from tallfit.results import FitResult
+from tallfit.solve.robust import check_kind
 
 __all__ = ["HEAT_CELLS", "SAMPLE_ROWS", "SecondPass", "TOP_K", "second_pass"]
 
@@ -109,6 +110,7 @@ def second_pass(
     *,
     cluster: Sequence[str] = (),
     keep: Sequence[str] = (),
+    robust: str | None = "HC3",
     diagnostics: bool = True,
     top_k: int = TOP_K,
     batch_rows: int = DEFAULT_BATCH_ROWS,
@@ -116,7 +118,9 @@ def second_pass(
     workers: int | None = None,
 ) -> SecondPass:
     """Scan ``data`` once with the fitted ``model`` (see the module note); ``workers`` threads
-    (default: every core) when the data has several parts. The result does not depend on it."""
+    (default: every core) when the data has several parts. The result does not depend on it.
+    ``robust`` names the HC estimator whose sandwich sums are kept ("all": the four, at about
+    four times the cost of one)."""
     from tallfit.inputs import as_source
 
     if not isinstance(model, FitResult):
@@ -135,7 +139,8 @@ def second_pass(
         raise DesignError(f"clustering takes one or two key columns, not {len(cluster)} ({', '.join(cluster)})")
     workers = worker_count(workers)
     source = as_source(data)
-    plan = PassPlan(model, cluster, keep, diagnostics, top_k)
+    check_kind(robust)
+    plan = PassPlan(model, cluster, keep, diagnostics, top_k, robust)
     extra = list(dict.fromkeys(list(cluster) + list(keep)))
     parts = source_parts(source)
     if parts is not None:

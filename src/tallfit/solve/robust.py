@@ -26,7 +26,7 @@ import numpy as np
 from scipy import stats
 from scipy.linalg import solve_triangular
 
-from tallfit.diagnostics.kernels import scatter_rows
+from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, SCORES_HC2, SCORES_HC3, scatter_rows
 from tallfit.errors import DesignError
 
 KINDS = ("HC0", "HC1", "HC2", "HC3")
@@ -34,31 +34,44 @@ FEW_CLUSTERS = 50  # common practice: fewer than about 40-50 clusters make clust
 LEVERAGE_ONE = 1.0 - 1e-10  # a row with hᵢ this close to 1 alone determines a coefficient
 
 
+# which sandwich rows the second pass sums for each choice (diagnostics.kernels.tile_scores)
+_MODES = {"HC0": SCORES, "HC1": SCORES, "HC2": SCORES_HC2, "HC3": SCORES_HC3, "ALL": SCORES_ALL}
+_GIVES = {SCORES: ("HC0", "HC1"), SCORES_HC2: ("HC2",), SCORES_HC3: ("HC3",), SCORES_ALL: KINDS}
+
+
 @dataclass
 class SandwichSums:
-    """The Gram of [wᵢ, dᵢwᵢ] (wᵢ = eᵢzᵢ the scores, dᵢ = hᵢ/(1 − hᵢ)) and Σ zᵢeᵢ (≈ 0 on the fitting data).
+    """The Gram of the sandwich rows Vᵢ of the chosen estimator and Σ zᵢeᵢ (≈ 0 on the fitting data).
 
-    Its blocks are Σ wwᵀ, Σ d wwᵀ and Σ d² wwᵀ, so one product gives every meat: HC0 Σ wwᵀ,
-    HC2 Σ (1 + d) wwᵀ = Σ wwᵀ/(1 − h), HC3 Σ (1 + d)² wwᵀ = Σ wwᵀ/(1 − h)² (sums of positive
-    semi-definite terms: nothing cancels)."""
+    With the scores wᵢ = eᵢzᵢ: for HC0/HC1 Vᵢ = wᵢ, for HC2 wᵢ/√(1 − hᵢ), for HC3 wᵢ/(1 − hᵢ), so
+    V'V is that estimator's meat (sums of positive semi-definite terms: nothing cancels). For
+    "all", Vᵢ = [wᵢ, dᵢwᵢ] with dᵢ = hᵢ/(1 − hᵢ): its blocks Σ wwᵀ, Σ d wwᵀ and Σ d² wwᵀ give HC0
+    Σ wwᵀ, HC2 Σ (1 + d) wwᵀ and HC3 Σ (1 + d)² wwᵀ, at four times the cost of one."""
 
     p: int
+    mode: int = SCORES_HC3
     n: int = 0
-    gram: np.ndarray = None  # type: ignore[assignment]  # (2p × 2p)
+    gram: np.ndarray = None  # type: ignore[assignment]  # (p × p, or 2p × 2p for "all")
     score_sum: np.ndarray = None  # type: ignore[assignment]
     rss: float = 0.0
     max_leverage: float = 0.0
 
     @classmethod
-    def create(cls, p: int) -> "SandwichSums":
-        return cls(p, 0, np.zeros((2 * p, 2 * p)), np.zeros(p))
+    def create(cls, p: int, kind: str | None = None) -> "SandwichSums":
+        mode = _MODES[(kind or "HC3").upper()]
+        q = 2 * p if mode == SCORES_ALL else p
+        return cls(p, mode, 0, np.zeros((q, q)), np.zeros(p))
 
-    def add_scores(self, V: np.ndarray) -> None:
-        """Fold the rows V = [w | d·w] of a tile (from kernels.scores_and_leverage, which also adds
-        to ``score_sum``)."""
-        self.gram += V.T @ V  # one BLAS syrk of 2p columns: cheaper than three of p
+    @property
+    def kinds(self) -> tuple[str, ...]:
+        """The estimators these sums give."""
+        return _GIVES[self.mode]
 
-    def add_rows(self, e: np.ndarray, h: np.ndarray) -> None:
+    def add_rows(self, V: np.ndarray) -> None:
+        """Fold a tile's sandwich rows (from kernels.tile_scores, which also adds to ``score_sum``)."""
+        self.gram += V.T @ V  # BLAS syrk
+
+    def add_residuals(self, e: np.ndarray, h: np.ndarray) -> None:
         """Count a block's rows: residuals e and leverages h."""
         self.rss += float(e @ e)
         self.n += len(e)
@@ -70,21 +83,20 @@ class SandwichSums:
         B = self.gram[a * p : (a + 1) * p, b * p : (b + 1) * p]
         return (B + B.T) / 2.0
 
-    @property
-    def meat0(self) -> np.ndarray:
-        return self._block(0, 0)
-
-    @property
-    def meat2(self) -> np.ndarray:
-        return self._block(0, 0) + self._block(0, 1)
-
-    @property
-    def meat3(self) -> np.ndarray:
+    def meat(self, kind: str) -> np.ndarray:
+        """Ω_z of HC0…HC3 (one of ``kinds``)."""
+        kind = kind.upper()
+        if kind not in self.kinds:
+            raise ValueError(f"these sums give {', '.join(self.kinds)}, not {kind}")
+        if self.mode != SCORES_ALL or kind in ("HC0", "HC1"):
+            return self._block(0, 0)
+        if kind == "HC2":
+            return self._block(0, 0) + self._block(0, 1)
         return self._block(0, 0) + 2.0 * self._block(0, 1) + self._block(1, 1)
 
     def merge(self, other: "SandwichSums") -> "SandwichSums":
         return SandwichSums(
-            self.p, self.n + other.n, self.gram + other.gram, self.score_sum + other.score_sum,
+            self.p, self.mode, self.n + other.n, self.gram + other.gram, self.score_sum + other.score_sum,
             self.rss + other.rss, max(self.max_leverage, other.max_leverage),
         )
 
@@ -139,9 +151,10 @@ def _sandwich(Rinv: np.ndarray, meat_z: np.ndarray) -> np.ndarray:
 
 
 def check_kind(kind: str | None) -> None:
-    """Fail before any pass on an unknown estimator name (None means the default, HC3)."""
-    if kind is not None and str(kind).upper() not in KINDS:
-        raise DesignError(f"unknown robust covariance {kind!r}: choose one of {', '.join(KINDS)}")
+    """Fail before any pass on an unknown estimator name (None means the default, HC3; "all"
+    computes the four, with HC3 as the headline)."""
+    if kind is not None and str(kind).upper() not in _MODES:
+        raise DesignError(f"unknown robust covariance {kind!r}: choose one of {', '.join(KINDS)} or all")
 
 
 def hc_covariance(R11: np.ndarray, sums: SandwichSums, kind: str) -> np.ndarray:
@@ -151,8 +164,7 @@ def hc_covariance(R11: np.ndarray, sums: SandwichSums, kind: str) -> np.ndarray:
     n, p = sums.n, sums.p
     if kind in ("HC2", "HC3") and sums.max_leverage >= LEVERAGE_ONE:
         return np.full((p, p), np.nan)
-    meat = {"HC0": sums.meat0, "HC1": sums.meat0, "HC2": sums.meat2, "HC3": sums.meat3}[kind]
-    V = _sandwich(_bread(R11), meat)
+    V = _sandwich(_bread(R11), sums.meat(kind))
     return V * (n / (n - p)) if kind == "HC1" else V
 
 
@@ -227,13 +239,13 @@ def robust_results(
     selected: str | None,
     level: float,
 ) -> dict[str, Any]:
-    """The ``robust`` value of a FitResult: every HC estimator, the clustered one if asked."""
+    """The ``robust`` value of a FitResult: the HC estimators the sums give, the clustered one if asked."""
     n, p = sums.n, sums.p
     if n <= p:
         raise DesignError(f"{n} rows for {p} coefficients: robust errors need more rows than coefficients")
-    estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k), n - p, level) for k in KINDS}
+    estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k), n - p, level) for k in sums.kinds}
     notes: list[str] = []
-    if sums.max_leverage >= LEVERAGE_ONE:
+    if sums.max_leverage >= LEVERAGE_ONE and ({"HC2", "HC3"} & set(sums.kinds)):
         notes.append(
             "a row has leverage 1 (it alone determines a coefficient), so HC2 and HC3 are undefined; "
             "use HC0/HC1 or remove that row"
@@ -249,6 +261,7 @@ def robust_results(
         selected = key  # clustered errors are also robust to unequal noise: they are the headline
     else:
         selected = (selected or "HC3").upper()
+        selected = "HC3" if selected == "ALL" else selected
         if selected not in estimators:
             raise DesignError(f"unknown robust covariance {selected!r}: choose one of {', '.join(KINDS)}")
     return {
