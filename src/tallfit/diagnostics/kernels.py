@@ -28,36 +28,42 @@ import numba
 import numpy as np
 
 
-@numba.njit(cache=True, nogil=True, inline="always")
+# Kernels index views that start at 0 (a[r0:r1], then a[i]): with a loop over range(r0, r1),
+# numba cannot rule out negative indices, keeps its wrap-around branch and LLVM does not vectorise
+# (measured ≈ 7× slower for the cell index). nnan/ninf: the rows reaching them are finite.
+_FAST = {"nnan", "ninf", "nsz"}
+
+
+@numba.njit(cache=True, nogil=True, inline="always", fastmath=_FAST)
 def _cell(x, lo, scale, cells):
-    t = (x - lo) * scale
-    if t < 0.0:
-        return 0
-    k = int(t) + 1
-    return k if k <= cells else cells + 1
+    # t < 0 → cell 0, t ≥ cells → cells + 1, else ⌊t⌋ + 1: branch-free, so loops of it vectorise
+    t = min(max((x - lo) * scale, -1.0), float(cells))
+    return np.int64(np.floor(t)) + 1
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf):
     """out[j, k] += (1, x, e, e²) over rows r0..r1-1 of column cols[j] of A in grid cell k (e and
     kbuf indexed by the same rows); lo_seen / hi_seen track the range."""
+    ev = e[r0:r1]
+    kb = kbuf[r0:r1]
     for j in range(cols.shape[0]):
-        a = A[:, cols[j]]
+        a = A[r0:r1, cols[j]]
         lj = lo[j]
         sj = scale[j]
         mn = lo_seen[j]
         mx = hi_seen[j]
-        for i in range(r0, r1):  # indices first, then the scatter: two simple loops run faster
+        for i in range(a.shape[0]):  # indices first, then the scatter: two simple loops run faster
             x = a[i]
-            kbuf[i] = _cell(x, lj, sj, cells)
+            kb[i] = _cell(x, lj, sj, cells)
             mn = min(mn, x)
             mx = max(mx, x)
         lo_seen[j] = mn
         hi_seen[j] = mx
         o = out[j]  # one column's cells (33 KB at 1024 cells)
-        for i in range(r0, r1):
-            k = kbuf[i]
-            r = e[i]
+        for i in range(a.shape[0]):
+            k = kb[i]
+            r = ev[i]
             o[k, 0] += 1.0
             o[k, 1] += a[i]
             o[k, 2] += r
@@ -70,7 +76,7 @@ def grid_bin_sums(A, cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf):
     grid_bin_sums_rows(A, 0, A.shape[0], cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf)
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def grid_index(x, lo, scale, cells, out):
     """out[i] = the grid cell of x[i]."""
     for i in range(x.shape[0]):
@@ -136,20 +142,24 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
     leverage h = ‖zᵢ‖²; Z's columns become the scores w = e·z (in place) and V the sandwich rows
     of ``mode`` (V unused for SCORES); score_sum += Σ w, bp_g += Σ e²·z (Breusch–Pagan)."""
     p = ZE.shape[1] - 1
-    ev = ZE[:, p]
+    ev = ZE[:m, p]
+    eo = e[r0 : r0 + m]
+    fo = fitted[r0 : r0 + m]
+    ho = h[r0 : r0 + m]
+    yv = y[r0 : r0 + m]
     for i in range(m):
         r = ev[i]
-        e[r0 + i] = r
-        fitted[r0 + i] = y[r0 + i] - r
-        h[r0 + i] = 0.0
+        eo[i] = r
+        fo[i] = yv[i] - r
+        ho[i] = 0.0
     for j in range(p):
-        zj = ZE[:, j]
+        zj = ZE[:m, j]
         for i in range(m):
-            h[r0 + i] += zj[i] * zj[i]
+            ho[i] += zj[i] * zj[i]
     c = np.empty(m)  # V's row multiplier (d for SCORES_ALL)
     if mode != SCORES:
         for i in range(m):
-            hi = h[r0 + i]
+            hi = ho[i]
             if hi >= 1.0:
                 c[i] = np.inf
             elif mode == SCORES_HC2:
@@ -159,7 +169,7 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
             else:
                 c[i] = hi / (1.0 - hi)
     for j in range(p):
-        zj = ZE[:, j]
+        zj = ZE[:m, j]
         s = 0.0
         g = 0.0
         for i in range(m):
@@ -170,12 +180,12 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
         score_sum[j] += s
         bp_g[j] += g
         if mode == SCORES_HC2 or mode == SCORES_HC3:
-            vj = V[:, j]
+            vj = V[:m, j]
             for i in range(m):
                 vj[i] = zj[i] * c[i]
         elif mode == SCORES_ALL:
-            v0 = V[:, j]
-            v1 = V[:, p + j]
+            v0 = V[:m, j]
+            v1 = V[:m, p + j]
             for i in range(m):
                 v0[i] = zj[i]
                 v1[i] = zj[i] * c[i]
