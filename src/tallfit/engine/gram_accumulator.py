@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from tallfit.accumulate.factor import FactorAccumulator
-from tallfit.kernels.gram import SAFE_DIGITS, SHIFT_ROWS, CoMoments, comoment_digits, factor_from_comoments, shift_and_range
+from tallfit.kernels.gram import SAFE_DIGITS, SHIFT_ROWS, CoMoments, comoment_digits, factor_from_comoments
 
 
 @dataclass
@@ -37,8 +37,8 @@ class GramAccumulator:
     def n_used(self) -> int:
         return self.cm.n
 
-    def update_block(self, block, *, owned: bool = False) -> None:
-        """Add a DesignBlock; ``owned`` lets the block's matrix be overwritten (saves a copy)."""
+    def update_block(self, block) -> None:
+        """Add a DesignBlock (its matrix is left unchanged)."""
         A = block.A
         if A.shape[1] != len(self.names):
             raise ValueError(f"block has {A.shape[1]} columns, accumulator has {len(self.names)}")
@@ -46,15 +46,12 @@ class GramAccumulator:
             first = 1 if self.intercept else 0
             if self.cm.shift is None:
                 self.cm.shift = A[: min(A.shape[0], SHIFT_ROWS), first:].mean(axis=0)
-            D = A if (owned and A.flags.f_contiguous) else np.array(A, order="F")
             lo, hi = getattr(block, "col_min", None), getattr(block, "col_max", None)
-            if lo is not None and hi is not None:  # the design measured the ranges already
-                np.minimum(self.col_min, lo, out=self.col_min)
-                np.maximum(self.col_max, hi, out=self.col_max)
-                D[:, first:] -= self.cm.shift
-            else:
-                shift_and_range(D, first, self.cm.shift, self.col_min, self.col_max)  # one pass, in place
-            self.cm.add_shifted(D, ones_first=self.intercept)
+            if lo is None or hi is None:  # the design measures them; other blocks are measured here
+                lo, hi = A.min(axis=0), A.max(axis=0)
+            np.minimum(self.col_min, lo, out=self.col_min)
+            np.maximum(self.col_max, hi, out=self.col_max)
+            self.cm.add_rows(A, first)
         self.n_read += block.n_read
         for name, count in block.dropped_by_column.items():
             self.dropped_by_column[name] = self.dropped_by_column.get(name, 0) + count

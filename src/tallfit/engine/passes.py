@@ -128,7 +128,7 @@ def factor_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Desi
         return acc
     g = fold_pass(source, spec, batch_rows, progress, design, workers,
                   lambda: GramAccumulator.create(names, spec.intercept),
-                  lambda acc, b: acc.update_block(b, owned=True))
+                  lambda acc, b: acc.update_block(b))
     acc = g.to_factor()
     report = MethodReport(method, "gram", gram=g)
     safe, aliased = _verdict(g, acc) if acc.n_used > 0 else (True, False)

@@ -27,9 +27,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import numba
 import numpy as np
 from scipy.linalg import LinAlgError, cho_factor, cho_solve, cholesky, qr
+
+from tallfit.kernels.products import gram, shifted_sums
 
 EPS = np.finfo(np.float64).eps
 #: Fewer estimated digits than this and the Gram result is unsafe (common practice: single precision
@@ -52,8 +53,8 @@ class CoMoments:
     def create(cls, q: int) -> "CoMoments":
         return cls(q=q, n=0, shift=None, sums=np.zeros(q), G=np.zeros((q, q)))
 
-    def update(self, B: np.ndarray, *, overwrite: bool = False) -> None:
-        """Add the rows of B (m × q; Fortran order is fastest). With ``overwrite`` B is shifted in place."""
+    def update(self, B: np.ndarray) -> None:
+        """Add the rows of B (m × q, contiguous columns)."""
         m = B.shape[0]
         if m == 0:
             return
@@ -61,26 +62,26 @@ class CoMoments:
             raise ValueError(f"block has {B.shape[1]} columns, co-moments have {self.q}")
         if self.shift is None:
             self.shift = B[: min(m, SHIFT_ROWS)].mean(axis=0)
-        D = np.subtract(B, self.shift, out=B if overwrite else None)
-        if not D.flags.f_contiguous:
-            D = np.asfortranarray(D)
-        self.G += np.dot(D.T, D)  # np.dot (not @) releases the GIL and overlaps across threads
-        self.sums += D.sum(axis=0)
-        self.n += m
+        self.add_rows(B, 0)
 
-    def add_shifted(self, D: np.ndarray, ones_first: bool) -> None:
-        """Add rows already shifted by ``self.shift``; with ``ones_first`` D's column 0 is all ones,
-        so one product gives Σ(a − c) (row 0) beside Σ(a − c)(a − c)ᵀ, with no separate sum."""
-        m = D.shape[0]
+    def add_rows(self, A: np.ndarray, first: int) -> None:
+        """Add A's rows shifted by ``self.shift`` in columns ``first``…; columns before ``first`` are
+        all ones (the intercept; ``first`` is 0 or 1), so with one the same product gives Σ(a − c)
+        beside Σ(a − c)(a − c)ᵀ. A is left unchanged (kernels.products.shifted_gram shifts in
+        registers: no sweep of the block to shift it, and ≈ 3× faster than BLAS syrk here)."""
+        m, k = A.shape
         if m == 0:
             return
-        P = np.dot(D.T, D)
-        if ones_first:
+        s = np.zeros(k)
+        s[first:] = self.shift
+        P = np.zeros((k, k))
+        gram(A, s, out=P)
+        if first:
             self.G += P[1:, 1:]
             self.sums += P[0, 1:]
         else:
             self.G += P
-            self.sums += D.sum(axis=0)
+            shifted_sums(A, s, self.sums)
         self.n += m
 
     def mean(self) -> np.ndarray:
@@ -196,28 +197,3 @@ def comoment_digits(cm: CoMoments, keep: list[int], intercept: bool, trials: int
     if intercept and 0 not in keep:
         digits = digits[1:]
     return digits
-
-
-@numba.njit(cache=True, nogil=True, fastmath=True)
-def shift_and_range(A, first, shift, lo, hi):  # pragma: no cover - compiled
-    """One pass per column: lo/hi ← running min/max of every column; columns from `first` on get
-    `shift` subtracted in place. A holds finite values only (the design dropped the others), so
-    fast-math min/max are exact."""
-    m, k = A.shape
-    for j in range(k):
-        a = lo[j]
-        b = hi[j]
-        if j >= first:
-            s = shift[j - first]
-            for i in range(m):
-                v = A[i, j]
-                a = min(a, v)
-                b = max(b, v)
-                A[i, j] = v - s
-        else:
-            for i in range(m):
-                v = A[i, j]
-                a = min(a, v)
-                b = max(b, v)
-        lo[j] = a
-        hi[j] = b
