@@ -50,18 +50,21 @@ def _ours(table, target, feats, batch_rows=7, cluster=(), selected="HC3"):
     return model, robust_for_model(model, sp.sandwich, sp.clusters, selected)
 
 
+def _shipped(dataset, grunfeld):
+    """(table, X with constant, y, target, features) of a data set statsmodels ships."""
+    if dataset == "grunfeld":
+        table, X, y, _, _ = grunfeld
+        return table, X, y, "invest", ["value", "capital"]
+    d = sm.datasets.fair.load_pandas().data
+    feats = ["rate_marriage", "age", "yrs_married", "children", "religious", "educ"]
+    table = pa.table({c: d[c].to_numpy(float) for c in feats + ["affairs"]})
+    return table, sm.add_constant(d[feats].to_numpy(float)), d["affairs"].to_numpy(float), "affairs", feats
+
+
 @pytest.mark.parametrize("kind", ["HC0", "HC1", "HC2", "HC3"])
 @pytest.mark.parametrize("dataset", ["grunfeld", "fair"])
 def test_hc_matches_statsmodels(kind, dataset, grunfeld):
-    if dataset == "grunfeld":
-        table, X, y, _, _ = grunfeld
-        target, feats = "invest", ["value", "capital"]
-    else:
-        d = sm.datasets.fair.load_pandas().data
-        feats = ["rate_marriage", "age", "yrs_married", "children", "religious", "educ"]
-        target = "affairs"
-        table = pa.table({c: d[c].to_numpy(float) for c in feats + [target]})
-        X, y = sm.add_constant(d[feats].to_numpy(float)), d[target].to_numpy(float)
+    table, X, y, target, feats = _shipped(dataset, grunfeld)
     _, r = _ours(table, target, feats, batch_rows=500 if dataset == "fair" else 7, selected=kind)
     ref = sm.OLS(y, X).fit(cov_type=kind, use_t=True)
     est = r["estimators"][kind]
@@ -79,15 +82,7 @@ def test_hc_matches_statsmodels(kind, dataset, grunfeld):
 @pytest.mark.parametrize("dataset", ["grunfeld", "fair"])
 def test_all_four_from_one_pass_match_statsmodels(dataset, grunfeld):
     """robust="all" sums [w | d·w] once and forms every HC meat from its blocks."""
-    if dataset == "grunfeld":
-        table, X, y, _, _ = grunfeld
-        target, feats = "invest", ["value", "capital"]
-    else:
-        d = sm.datasets.fair.load_pandas().data
-        feats = ["rate_marriage", "age", "yrs_married", "children", "religious", "educ"]
-        target = "affairs"
-        table = pa.table({c: d[c].to_numpy(float) for c in feats + [target]})
-        X, y = sm.add_constant(d[feats].to_numpy(float)), d[target].to_numpy(float)
+    table, X, y, target, feats = _shipped(dataset, grunfeld)
     _, r = _ours(table, target, feats, batch_rows=300, selected="all")
     assert r["selected"] == "HC3" and sorted(r["estimators"]) == ["HC0", "HC1", "HC2", "HC3"]
     for kind in ("HC0", "HC1", "HC2", "HC3"):

@@ -74,20 +74,34 @@ def _block(A, r0, r1, s, j, k, P):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True)
-def shifted_gram(A, s, P):  # pragma: no cover - compiled
-    """P (q × q) += Σᵢ (aᵢ − s)(aᵢ − s)ᵀ over A's rows (m × q, contiguous columns); P symmetric."""
-    m, q = A.shape
-    U = np.zeros((q, q))
-    for r0 in range(0, m, TILE_ROWS):
-        r1 = min(r0 + TILE_ROWS, m)
+def upper_gram_rows(A, r0, r1, s, U):  # pragma: no cover - compiled
+    """The upper triangle of U (q × q) += Σ (aᵢ − s)(aᵢ − s)ᵀ over rows r0..r1-1 of A."""
+    q = A.shape[1]
+    for a in range(r0, r1, TILE_ROWS):
+        b = min(a + TILE_ROWS, r1)
         for j in range(0, q, 4):
             for k in range(j, q, 4):
-                _block(A, r0, r1, s, j, k, U)
+                _block(A, a, b, s, j, k, U)
+
+
+@numba.njit(cache=True, nogil=True)
+def mirror_into(U, P):  # pragma: no cover - compiled
+    """P += U + strict upper(U)ᵀ: a symmetric matrix from its upper triangle."""
+    q = U.shape[0]
     for j in range(q):
         P[j, j] += U[j, j]
         for k in range(j + 1, q):
             P[j, k] += U[j, k]
             P[k, j] += U[j, k]
+
+
+@numba.njit(cache=True, nogil=True)
+def shifted_gram(A, s, P):  # pragma: no cover - compiled
+    """P (q × q) += Σᵢ (aᵢ − s)(aᵢ − s)ᵀ over A's rows (m × q, contiguous columns); P symmetric."""
+    q = A.shape[1]
+    U = np.zeros((q, q))
+    upper_gram_rows(A, 0, A.shape[0], s, U)
+    mirror_into(U, P)
 
 
 @numba.njit(cache=True, nogil=True)  # no reassoc: Σ(a − s) must not become Σa − m·s
