@@ -226,13 +226,14 @@ class PartSums:
             ZE, V = self._tile(b - a)
             np.matmul(A[a:b], M, out=ZE)  # [Z | e], BLAS without the GIL
             tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum)
-            if bin_here:  # A's rows of this tile are still in cache
-                out.feature_bins.update(A, e, plan.fcols, ka, rows=(a, b))
             W = ZE[:, :p]  # the scores
             sandwich.add_rows(W if mode == SCORES else V)
             for c, sums, g in zip(codes, out.clusters, groups):
                 sums.update(c[a:b], W, g)
         sandwich.add_residuals(e, h)
+        if bin_here:  # per block, column by column (measured ≈ 35 % less time than per tile, whose
+            # other buffers pushed the 21 cell tables of 33 KB out of the core's L2)
+            out.feature_bins.update(A, e, plan.fcols, ka)
         bp.add_squares(e)
         out.n_used += m
         if plan.diagnostics:
