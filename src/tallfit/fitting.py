@@ -60,11 +60,14 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
     acc = result.accumulator
     keep = [acc.names.index(t) for t in result.terms]
     alpha = means[:, -1] - means[:, keep] @ result.inference.estimate
-    levels = {lvl: i for lvl, i in absorber.coder.index.items() if absorber.counts[i] > 0}
+    index = absorber.coder.index  # level → id
+    ids = np.fromiter(index.values(), dtype=np.int64, count=len(index))
     counts = absorber.counts
-    effects = {lvl: float(alpha[i]) for lvl, i in levels.items()}
-    idx = np.array(list(levels.values()), dtype=np.int64)
-    mean_effect = float(np.sum(alpha[idx] * counts[idx]) / counts[idx].sum())
+    seen = counts[ids] > 0
+    used = ids[seen]
+    labels = [lvl for lvl, keep in zip(index, seen.tolist()) if keep]
+    effects = dict(zip(labels, alpha[used].tolist()))
+    mean_effect = float(np.sum(alpha[used] * counts[used]) / counts[used].sum())
     coding = result.coding or {"names": list(acc.names), "columns": {}}
     coding["absorbed"] = {
         "column": absorbed["column"],
