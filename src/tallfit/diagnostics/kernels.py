@@ -42,24 +42,18 @@ def _cell(x, lo, scale, cells):
 
 
 @numba.njit(cache=True, nogil=True, fastmath=_FAST)
-def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf):
+def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, kbuf):
     """out[j, k] += (1, x, e, e²) over rows r0..r1-1 of column cols[j] of A in grid cell k (e and
-    kbuf indexed by the same rows); lo_seen / hi_seen track the range."""
+    kbuf indexed by the same rows). The columns' ranges are the caller's (BinnedSums.update):
+    numba's min/max would keep the cell loop from vectorising."""
     ev = e[r0:r1]
     kb = kbuf[r0:r1]
     for j in range(cols.shape[0]):
         a = A[r0:r1, cols[j]]
         lj = lo[j]
         sj = scale[j]
-        mn = lo_seen[j]
-        mx = hi_seen[j]
         for i in range(a.shape[0]):  # indices first, then the scatter: two simple loops run faster
-            x = a[i]
-            kb[i] = _cell(x, lj, sj, cells)
-            mn = min(mn, x)
-            mx = max(mx, x)
-        lo_seen[j] = mn
-        hi_seen[j] = mx
+            kb[i] = _cell(a[i], lj, sj, cells)
         o = out[j]  # one column's cells (33 KB at 1024 cells)
         for i in range(a.shape[0]):
             k = kb[i]
@@ -71,9 +65,9 @@ def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, lo_seen, hi_se
 
 
 @numba.njit(cache=True, nogil=True)
-def grid_bin_sums(A, cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf):
+def grid_bin_sums(A, cols, e, lo, scale, cells, out, kbuf):
     """``grid_bin_sums_rows`` over every row of A."""
-    grid_bin_sums_rows(A, 0, A.shape[0], cols, e, lo, scale, cells, out, lo_seen, hi_seen, kbuf)
+    grid_bin_sums_rows(A, 0, A.shape[0], cols, e, lo, scale, cells, out, kbuf)
 
 
 @numba.njit(cache=True, nogil=True, fastmath=_FAST)
