@@ -219,12 +219,17 @@ class PartSums:
         # every step on a tile of rows while it is in cache (measured ≈ 15 % less CPU than sweeping
         # whole blocks step by step: each sweep of a 10 MB block is bound by memory traffic)
         M = plan.tile_map(A.shape[1])
+        half = p // 2
+        split = int(plan.cols[half - 1]) + 1 if half else 0
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
         for a in range(0, m, TILE_ROWS):
             b = min(a + TILE_ROWS, m)
             ZE, V = self._tile(b - a)
-            np.matmul(A[a:b], M, out=ZE)  # [Z | e], BLAS without the GIL
+            # [Z | e] by BLAS without the GIL, in two products: Z's first p/2 columns need only the
+            # design columns up to cols[p/2 − 1] (R11⁻¹ is upper triangular): ¾ of one dense product
+            np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
+            np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
             tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum)
             W = ZE[:, :p]  # the scores
             sandwich.add_rows(W if mode == SCORES else V)
