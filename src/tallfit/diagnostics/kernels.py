@@ -150,18 +150,16 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
         zj = ZE[:m, j]
         for i in range(m):
             ho[i] += zj[i] * zj[i]
-    c = np.empty(m)  # V's row multiplier (d for SCORES_ALL)
-    if mode != SCORES:
+    c = np.empty(m)  # V's row multiplier (d for SCORES_ALL); one loop per mode, so each vectorises
+    if mode == SCORES_HC2:
         for i in range(m):
-            hi = ho[i]
-            if hi >= 1.0:
-                c[i] = np.inf
-            elif mode == SCORES_HC2:
-                c[i] = 1.0 / np.sqrt(1.0 - hi)
-            elif mode == SCORES_HC3:
-                c[i] = 1.0 / (1.0 - hi)
-            else:
-                c[i] = hi / (1.0 - hi)
+            c[i] = 1.0 / np.sqrt(1.0 - ho[i]) if ho[i] < 1.0 else np.inf
+    elif mode == SCORES_HC3:
+        for i in range(m):
+            c[i] = 1.0 / (1.0 - ho[i]) if ho[i] < 1.0 else np.inf
+    elif mode == SCORES_ALL:
+        for i in range(m):
+            c[i] = ho[i] / (1.0 - ho[i]) if ho[i] < 1.0 else np.inf
     for j in range(p):
         zj = ZE[:m, j]
         s = 0.0
