@@ -171,3 +171,26 @@ def test_scatter_kernel_matches_reference():
     S = np.zeros((37, 4), order="F")
     scatter_rows(codes, W, S)
     np.testing.assert_allclose(S, scatter_rows_reference(codes, W, 37), rtol=1e-12, atol=1e-12)
+
+
+def test_fit_robust_all_keeps_the_four_and_one_kind_keeps_one(grunfeld):
+    table, X, y, _, _ = grunfeld
+    both = tallfit.fit(table, target="invest", features=["value", "capital"], robust="all")
+    assert both.robust["selected"] == "HC3" and sorted(both.robust["estimators"]) == ["HC0", "HC1", "HC2", "HC3"]
+    for kind in ("HC0", "HC2"):
+        _close(both.robust["estimators"][kind]["std_error"], sm.OLS(y, X).fit(cov_type=kind).bse)
+    one = tallfit.fit(table, target="invest", features=["value", "capital"], robust="HC2")
+    assert sorted(one.robust["estimators"]) == ["HC2"]
+    _close(one.robust["estimators"]["HC2"]["covariance"], both.robust["estimators"]["HC2"]["covariance"])
+    with pytest.raises(DesignError, match="unknown robust covariance 'HC9'"):
+        tallfit.fit(table, target="invest", features=["value", "capital"], robust="HC9")
+
+
+def test_summary_caution_names_what_the_robust_errors_allow(grunfeld):
+    table = grunfeld[0]
+    plain = tallfit.fit(table, target="invest", features=["value", "capital"]).summary()
+    assert "robust or clustered errors need a second pass" in plain
+    hc = tallfit.fit(table, target="invest", features=["value", "capital"], robust="HC1").summary()
+    assert "HC1 allows unequal noise but" in hc and "need a second pass" not in hc
+    cl = tallfit.fit(table, target="invest", features=["value", "capital"], cluster="firm").summary()
+    assert "dependent within a cluster" in cl

@@ -49,11 +49,20 @@ def _robust_lines(result: FitResult) -> list[str]:
 
 def _cautions(result: FitResult) -> list[str]:
     k = len(result.terms) - (1 if result.spec.intercept else 0)
+    selected = (result.robust or {}).get("selected", "")
+    if selected.startswith("cluster:"):
+        errors = ["std.err assumes independent rows of equal noise; the clustered errors allow noise",
+                  "  that is unequal and dependent within a cluster, not across clusters"]
+    elif selected:
+        errors = [f"std.err assumes independent rows of equal noise; {selected} allows unequal noise but",
+                  "  still assumes independent rows (log rows rarely are: cluster them, e.g. by host)"]
+    else:
+        errors = ["std.err assumes independent rows of equal noise; log rows are rarely independent, so",
+                  "  these errors are likely too small (robust or clustered errors need a second pass)"]
     lines = [
         "association, not causation: an estimate is the change in the target that goes with a unit",
         "  change of the term in these data, others held fixed, not what an intervention would do",
-        "std.err assumes independent rows of equal noise; log rows are rarely independent, so",
-        "  these errors are likely too small (robust or clustered errors need a second pass)",
+        *errors,
         "predictions outside the fitted range of the features (see feature ranges) extrapolate",
     ]
     if k > 1:
