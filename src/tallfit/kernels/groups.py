@@ -109,6 +109,9 @@ def rehash_ints(keys, n, size):
 
 
 # -- within-level rows: Welford's update written as rows of a QR factor --------------------------
+# The one-row merge is written out in both kernels below on purpose: a shared inline helper
+# (indexing the level's mean row) measured 2.3× slower for within_rows (0.67 s against 0.29 s per
+# 10^7 rows), whose cost is one random access per row.
 
 @numba.njit(cache=True, nogil=True)
 def within_rows(Z, codes, w, counts, means, out):
