@@ -35,7 +35,7 @@ class BreuschPaganSums:
 
     def add_squares(self, e: np.ndarray) -> None:
         """Fold one block's uᵢ = eᵢ² into the centred sums (``g`` gets Σ zᵢuᵢ from
-        kernels.scores_and_leverage, in the same sweep as the sandwich scores)."""
+        kernels.tile_scores, in the same sweep as the sandwich scores)."""
         m = len(e)
         if m == 0:
             return
