@@ -64,23 +64,22 @@ class BinnedSums:
         return cls(grid, np.zeros((q, grid.cells + 2, 4)), np.full(q, np.inf), np.full(q, -np.inf))
 
     def update(self, A: np.ndarray, e: np.ndarray, cols: np.ndarray | None = None,
-               kbuf: np.ndarray | None = None, rows: tuple[int, int] | None = None,
+               kbuf: np.ndarray | None = None,
                ranges: tuple[np.ndarray, np.ndarray] | None = None) -> None:
         """Fold the rows of A's columns ``cols`` (all by default) with their residuals e (indexed
-        like A's rows); ``rows`` = (start, stop) folds only those. ``ranges``: the minimum and
-        maximum of each of A's columns over those rows when the caller has them (a design block
-        does), else numpy measures them."""
-        r0, r1 = rows if rows is not None else (0, A.shape[0])
-        if r1 <= r0:
+        like A's rows). ``ranges``: the minimum and maximum of each of A's columns when the caller
+        has them (a design block does), else numpy measures them."""
+        m = A.shape[0]
+        if m == 0:
             return
         cols = np.arange(A.shape[1], dtype=np.int64) if cols is None else np.asarray(cols, dtype=np.int64)
         if ranges is None:
-            ranges = (A[r0:r1].min(axis=0), A[r0:r1].max(axis=0))
+            ranges = (A.min(axis=0), A.max(axis=0))
         np.minimum(self.lo_seen, ranges[0][cols], out=self.lo_seen)
         np.maximum(self.hi_seen, ranges[1][cols], out=self.hi_seen)
-        if kbuf is None or len(kbuf) < r1:
-            kbuf = np.empty(r1, dtype=np.int64)
-        grid_bin_sums_rows(A, r0, r1, cols, e, self.grid.lo, self.grid.scale, self.grid.cells, self.sums, kbuf)
+        if kbuf is None or len(kbuf) < m:
+            kbuf = np.empty(m, dtype=np.int64)
+        grid_bin_sums_rows(A, 0, m, cols, e, self.grid.lo, self.grid.scale, self.grid.cells, self.sums, kbuf)
 
     def merge(self, other: "BinnedSums") -> "BinnedSums":
         return BinnedSums(self.grid, self.sums + other.sums, np.minimum(self.lo_seen, other.lo_seen),
