@@ -1,11 +1,11 @@
 """The sums of the second pass for one part of the data: the shared plan (the model's columns,
 β, R11⁻¹, the options and the bin grids) and each part's running sums (create / fold / absorb).
 
-Per block of used rows, on row tiles that stay in a core's cache: one BLAS product of the tile's
-design rows with the plan's tile map gives [Z | e] together, zᵢ = R11⁻ᵀxᵢ and e = y − Xβ; one
+Per block of used rows, on row tiles that stay in a core's cache: BLAS products of the tile's
+design rows with the plan's tile map give [Z | e] together, zᵢ = R11⁻ᵀxᵢ and e = y − Xβ; one
 sweep (kernels.tile_scores) gives the fitted values, the leverages hᵢ = ‖zᵢ‖², the scores and
-the Breusch–Pagan sums, and one BLAS Gram the sandwich sums of the chosen HC estimator (or of all
-four); cluster score sums for one key or two (and their pairs); binned residual sums per
+the Breusch–Pagan sums, and one cross product (kernels.products) the sandwich sums of the chosen
+HC estimator (or of all four); cluster score sums for one key or two (and their pairs); binned residual sums per
 feature; then per block the fitted-value bins, a fitted × residual histogram, the residual sketch
 (MAE, quantiles) and the rows with the largest residuals and leverages, with their pass-through
 id columns.
