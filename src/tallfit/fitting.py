@@ -55,11 +55,17 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
     """Store the absorbed level effects α_g = ȳ_g − x̄_gᵀβ in the model's coding (for prediction)."""
     import numpy as np
 
-    raw_means = absorber.raw_means()
-    means = raw_means @ T if T is not None else raw_means
     acc = result.accumulator
     keep = [acc.names.index(t) for t in result.terms]
-    alpha = means[:, -1] - means[:, keep] @ result.inference.estimate
+    # α = M_c[:, y] − M_c[:, keep] β with the coded means M_c = M T: one product of the raw
+    # level means M with c = T[:, y] − T[:, keep] β
+    if T is None:
+        c = np.zeros(len(acc.names))
+        c[-1] = 1.0
+        c[keep] -= result.inference.estimate
+    else:
+        c = T[:, -1] - T[:, keep] @ result.inference.estimate
+    alpha = absorber.raw_means_dot(c)
     index = absorber.coder.index  # level → id
     ids = np.fromiter(index.values(), dtype=np.int64, count=len(index))
     counts = absorber.counts

@@ -265,18 +265,16 @@ class AbsorbAccumulator:
             level_counts={c: dict(v) for c, v in acc.level_counts.items()}, filled=dict(acc.filled),
         )
 
-    def raw_means(self) -> np.ndarray:
-        """Level means of every column of the design ``inner`` describes (levels × columns)."""
+    def raw_means_dot(self, c: np.ndarray) -> np.ndarray:
+        """(level means of every column of the design ``inner`` describes) @ c, one value per key
+        level, without forming the levels × columns matrix of means (10^5 × 64 is 51 MB)."""
         G = self.coder.n_columns
-        if not self.coders:
-            return self.means[:G]
         k = self.W.k
-        n_ind = len(self.raw_names()) - k
-        out = np.zeros((G, k + n_ind))
-        out[:, : k - 1] = self.means[:G, :-1]
-        out[:, -1] = self.means[:G, -1]
-        Wt = np.where(self.counts[:G] > 0, self.counts[:G], 1.0)
-        out[:, (k - 1) + self._indicator_positions()] = self.key_level[:G, : len(self.members)] / Wt[:, None]
+        out = self.means[:G, :-1] @ c[: k - 1] + self.means[:G, -1] * c[-1]
+        if self.coders:
+            pos = (k - 1) + self._indicator_positions()
+            Wt = np.where(self.counts[:G] > 0, self.counts[:G], 1.0)
+            out += (self.key_level[:G, : len(self.members)] @ c[pos]) / Wt
         return out
 
     def levels(self) -> list[str]:

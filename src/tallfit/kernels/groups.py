@@ -12,6 +12,8 @@ from __future__ import annotations
 import numba
 import numpy as np
 
+from tallfit.kernels.prefetch import DISTANCE, prefetch, prefetch1
+
 
 @numba.njit(cache=True, nogil=True)
 def _fnv(data, lo, hi):
@@ -126,6 +128,12 @@ def within_rows(Z, codes, w, counts, means, out):
     weighted = w.shape[0] > 0
     r = 0
     for i in range(m):
+        if i + DISTANCE < m:  # the level DISTANCE rows ahead: its lines on their way (prefetch.py)
+            ga = codes[i + DISTANCE]
+            prefetch1(counts, ga)
+            for j in range(0, k, 8):
+                prefetch(means, ga, j)
+            prefetch(means, ga, k - 1)
         g = codes[i]
         wi = w[i] if weighted else 1.0
         if wi == 0.0:
@@ -154,9 +162,17 @@ def within_rows_levels(Z, codes, levels, w, state, level_counts, cross, sums, ou
     with 10^5 levels the random accesses, not the arithmetic, set the cost)."""
     m, k = Z.shape
     C = levels.shape[1]
+    S = state.shape[1]
     weighted = w.shape[0] > 0
     r = 0
     for i in range(m):
+        if i + DISTANCE < m:  # the key level and (level, indicator) cells DISTANCE rows ahead
+            ga = codes[i + DISTANCE]
+            for j in range(0, S, 8):
+                prefetch(state, ga, j)
+            prefetch(state, ga, S - 1)
+            for c in range(C):
+                prefetch(level_counts, ga, levels[i + DISTANCE, c])
         g = codes[i]
         wi = w[i] if weighted else 1.0
         if wi == 0.0:
