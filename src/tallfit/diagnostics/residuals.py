@@ -138,8 +138,13 @@ class TopRows:
         if candidates.size == 0:
             return
         if candidates.size > self.k:
-            part = np.argpartition(score[candidates], -self.k)[-self.k :]
-            candidates = candidates[part]
+            # the k-th largest value t by partition; among rows tied at t the earliest win, as
+            # in one pass (argpartition's choice among ties depends on the numpy build)
+            s = score[candidates]
+            t = s[np.argpartition(s, -self.k)[-self.k]]
+            above = candidates[s > t]
+            ties = candidates[s == t][: self.k - above.size]
+            candidates = np.concatenate([above, ties])
         new_rows = detail(candidates)
         values = np.concatenate([self.values, score[candidates]])
         rows = self.rows + new_rows
