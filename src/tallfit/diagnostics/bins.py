@@ -78,7 +78,7 @@ class BinnedSums:
         np.minimum(self.lo_seen, ranges[0][cols], out=self.lo_seen)
         np.maximum(self.hi_seen, ranges[1][cols], out=self.hi_seen)
         if kbuf is None or len(kbuf) < m:
-            kbuf = np.empty(m, dtype=np.int64)
+            kbuf = np.empty(m, dtype=np.int32)
         grid_bin_sums_rows(A, 0, m, cols, e, self.grid.lo, self.grid.scale, self.grid.cells, self.sums, kbuf)
 
     def merge(self, other: "BinnedSums") -> "BinnedSums":

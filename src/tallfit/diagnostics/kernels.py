@@ -36,9 +36,12 @@ _FAST = {"nnan", "ninf", "nsz"}
 
 @numba.njit(cache=True, nogil=True, inline="always", fastmath=_FAST)
 def _cell(x, lo, scale, cells):
-    # t < 0 → cell 0, t ≥ cells → cells + 1, else ⌊t⌋ + 1: branch-free, so loops of it vectorise
+    # t < 0 → cell 0, t ≥ cells → cells + 1, else ⌊t⌋ + 1: branch-free, so loops of it vectorise.
+    # ⌊t⌋ as truncation to int32, less one where that rounded up (t in (-1, 0)): AVX2 has no
+    # packed double → int64 conversion, and with one the loop measured 2.5× slower.
     t = min(max((x - lo) * scale, -1.0), float(cells))
-    return np.int64(np.floor(t)) + 1
+    c = np.int32(t)
+    return c - np.int32(t < c) + np.int32(1)
 
 
 @numba.njit(cache=True, nogil=True, fastmath=_FAST)

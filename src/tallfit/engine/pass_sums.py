@@ -187,8 +187,8 @@ class PartSums:
     def _rows(self, m: int) -> tuple[np.ndarray, ...]:
         """Reused row vectors of at least m entries: fitted, e, h and two cell-index buffers."""
         if self._vec is None or len(self._vec[0]) < m:
-            self._vec = (np.empty(m), np.empty(m), np.empty(m), np.empty(m, dtype=np.int64),
-                         np.empty(m, dtype=np.int64))
+            self._vec = (np.empty(m), np.empty(m), np.empty(m), np.empty(m, dtype=np.int32),
+                         np.empty(m, dtype=np.int32))
         return tuple(v[:m] for v in self._vec)
 
     def release(self) -> None:
