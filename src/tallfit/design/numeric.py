@@ -70,9 +70,8 @@ def fill_matrix(
     if leading_ones:
         M[:, 0] = 1.0
         j = 1
-    at = {name: i for i, name in enumerate(batch.schema.names)}  # by name is a linear search
     for name in columns:
-        M[:, j] = column_as_float(batch.column(at[name]))
+        M[:, j] = column_as_float(batch.column(name))
         j += 1
     return M
 

@@ -4,7 +4,8 @@
 for ``a[i]``) towards the core, for writing, and returns at once: no fault, no effect on results.
 Issued a few dozen rows ahead of use, the misses of many rows overlap instead of queueing one
 after another (LLVM's ``llvm.prefetch`` intrinsic; numba has no Python-level spelling of it).
-Measured here on the (10^5 key levels × 58 indicators) update: 277 → 172 ns/row.
+Measured here on the (10^5 key levels × 58 indicators) update: 277 → 172 ns/row on invented
+codes, 255 → 115 ns/row inside the fit (bench_design's file).
 """
 
 from __future__ import annotations

@@ -317,12 +317,11 @@ class Source:
             return piece  # the columns asked for, in order, of their unified types already
         n, arrays = piece.num_rows, []
         where = f"{loc.path} (rows {row:,}-{row + n - 1:,})"
-        at = {name: i for i, name in enumerate(piece.schema.names)}  # by name is a linear search
         for c, f in zip(columns, out_schema):
             if c in self._part_types:
                 arrays.append(partition_array(part_value(loc.info.partition[c]), f.type, n))
             else:
-                arrays.append(cast_column(piece.column(at[c]), f.type, c, where))
+                arrays.append(cast_column(piece.column(c), f.type, c, where))
         return pa.RecordBatch.from_arrays(arrays, schema=out_schema)
 
     # ---- parts, for parallel passes

@@ -59,7 +59,6 @@ class IpcReader:
         with src:
             n = reader.num_record_batches if is_file else None
             i = row = 0
-            picks = None  # positions of ``columns`` in the batches (selecting by name searches)
             while n is None or i < n:
                 try:
                     rb = reader.get_batch(i) if is_file else reader.read_next_batch()
@@ -68,9 +67,6 @@ class IpcReader:
                 except _BAD_STATUS as exc:
                     raise DataSourceError(f"{loc.path}: corrupt Arrow data in record batch {i} after row {row:,} "
                                           f"({exc})") from None
-                if picks is None:
-                    at = {name: j for j, name in enumerate(rb.schema.names)}
-                    picks = [at[c] for c in columns]
-                yield rb.select(picks)
+                yield rb.select(columns)
                 row += rb.num_rows
                 i += 1
