@@ -59,12 +59,8 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
     keep = [acc.names.index(t) for t in result.terms]
     # α = M_c[:, y] − M_c[:, keep] β with the coded means M_c = M T: one product of the raw
     # level means M with c = T[:, y] − T[:, keep] β
-    if T is None:
-        c = np.zeros(len(acc.names))
-        c[-1] = 1.0
-        c[keep] -= result.inference.estimate
-    else:
-        c = T[:, -1] - T[:, keep] @ result.inference.estimate
+    T = np.eye(len(acc.names)) if T is None else T
+    c = T[:, -1] - T[:, keep] @ result.inference.estimate
     alpha = absorber.raw_means_dot(c)
     index = absorber.coder.index  # level → id
     ids = np.fromiter(index.values(), dtype=np.int64, count=len(index))

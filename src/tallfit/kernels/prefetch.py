@@ -28,35 +28,29 @@ def _emit(builder, ptr) -> None:
     builder.call(fn, [p, ir.Constant(i32, 1), ir.Constant(i32, 3), ir.Constant(i32, 1)])
 
 
-@intrinsic
-def prefetch(typingctx, arr, i, j):
-    """Prefetch the line of arr[i, j] (2-D array, any layout; indices must be in range)."""
-    if not (isinstance(arr, types.Array) and arr.ndim == 2):
+def _signature_and_codegen(arr, indices, ndim):
+    """The intrinsic's (signature, codegen) for an ndim-D array and that many indices, else None."""
+    if not (isinstance(arr, types.Array) and arr.ndim == ndim):
         return None
-    sig = types.void(arr, i, j)
+    sig = types.void(arr, *indices)
 
     def codegen(context, builder, signature, args):
-        aryty, ity, jty = signature.args
+        aryty, itys = signature.args[0], signature.args[1:]
         ary = context.make_array(aryty)(context, builder, args[0])
-        inds = [context.cast(builder, args[1], ity, types.intp), context.cast(builder, args[2], jty, types.intp)]
+        inds = [context.cast(builder, a, t, types.intp) for a, t in zip(args[1:], itys)]
         _emit(builder, cgutils.get_item_pointer(context, builder, aryty, ary, inds, wraparound=False))
         return context.get_dummy_value()
 
     return sig, codegen
+
+
+@intrinsic
+def prefetch(typingctx, arr, i, j):
+    """Prefetch the line of arr[i, j] (2-D array, any layout; indices must be in range)."""
+    return _signature_and_codegen(arr, (i, j), 2)
 
 
 @intrinsic
 def prefetch1(typingctx, arr, i):
     """Prefetch the line of arr[i] (1-D array, any layout; index must be in range)."""
-    if not (isinstance(arr, types.Array) and arr.ndim == 1):
-        return None
-    sig = types.void(arr, i)
-
-    def codegen(context, builder, signature, args):
-        aryty, ity = signature.args
-        ary = context.make_array(aryty)(context, builder, args[0])
-        inds = [context.cast(builder, args[1], ity, types.intp)]
-        _emit(builder, cgutils.get_item_pointer(context, builder, aryty, ary, inds, wraparound=False))
-        return context.get_dummy_value()
-
-    return sig, codegen
+    return _signature_and_codegen(arr, (i,), 1)
