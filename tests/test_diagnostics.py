@@ -17,6 +17,7 @@ import pytest
 
 import tallfit
 from tallfit.diagnostics.assemble import build_diagnostics
+from tallfit.diagnostics.bins import tail_points
 from tallfit.diagnostics.kernels import (
     grid_bin_sums, grid_bin_sums_reference, grid_index, grid_index_reference,
 )
@@ -133,6 +134,19 @@ def test_grid_kernels_match_reference():
     idx = np.empty(5000, dtype=np.int64)
     grid_index(A[:, 1], -1.0, 100.0, 128, idx)
     assert (idx == grid_index_reference(A[:, 1], -1.0, 100.0, 128)).all()
+
+
+@pytest.mark.parametrize("m", [1, 2, 7, 2001, 131_072])
+def test_grid_tail_points_equal_numpy_quantile(m):
+    # reference: numpy.quantile's default (linear) method, which the grid bounds used before
+    rng = np.random.default_rng(m)
+    S = np.asfortranarray(np.column_stack([rng.lognormal(0, 2, m), rng.normal(size=m), np.full(m, 3.0),
+                                           rng.integers(0, 4, m).astype(float)]))
+    for q in (0.0005, 0.01, 0.3):
+        lo, hi = tail_points(S, q)
+        ref = np.quantile(S, [q, 1.0 - q], axis=0)
+        np.testing.assert_allclose(lo, ref[0], rtol=1e-14, atol=0)
+        np.testing.assert_allclose(hi, ref[1], rtol=1e-14, atol=0)
 
 
 def _flags(quadratic: float, seeds: range) -> list[bool]:

@@ -20,6 +20,28 @@ GRID_CELLS = 1024
 TAIL = 0.0005  # a sample of part of the data sets the grid between its 0.05 % and 99.95 % points
 
 
+def tail_points(S: np.ndarray, q: float) -> tuple[np.ndarray, np.ndarray]:
+    """The q and 1 − q quantiles of each column of S (m × c), as ``np.quantile``'s default (linear)
+    method gives them, from two one-sided partitions per column: np.quantile partitions a copy of
+    all of S at four ranks at once, which measured about 6× slower on a 131,072-row sample."""
+    m = S.shape[0]
+    lo, hi = np.empty(S.shape[1]), np.empty(S.shape[1])
+    for j in range(S.shape[1]):
+        x = S[:, j]
+        for out, pos in ((lo, q * (m - 1)), (hi, (1.0 - q) * (m - 1))):
+            i = int(np.floor(pos))
+            t = pos - i
+            if i + 1 < m:  # order statistics i and i + 1: the smallest of the top m − i after one split
+                top = np.partition(x, i)[i:]
+                a = top[0]
+                b = top[1:].min()
+            else:
+                a = b = x.max()
+            # numpy's lerp: a + (b − a)·t, from the upper end when t ≥ ½
+            out[j] = b - (b - a) * (1.0 - t) if t >= 0.5 else a + (b - a) * t
+    return lo, hi
+
+
 @dataclass
 class Grid:
     """Per column: the grid's low end, cells per unit of x, and the number of cells."""
@@ -36,7 +58,7 @@ class Grid:
         if whole:
             lo, hi = S.min(axis=0), S.max(axis=0)
         else:
-            lo, hi = np.quantile(S, [TAIL, 1.0 - TAIL], axis=0)
+            lo, hi = tail_points(S, TAIL)
             pad = 0.05 * (hi - lo)
             lo, hi = lo - pad, hi + pad
         width = hi - lo

@@ -134,9 +134,15 @@ class PassPlan:
         if not held:
             F, fit = np.zeros((0, len(self.fcols))), np.zeros((0, 1))
         else:
-            raw = [b.A / b.A[:, :1] if self.weighted else b.A for b in held]
-            F = np.concatenate([a[:, self.fcols] for a in raw])
-            fit = np.concatenate([a[:, self.cols] @ self.beta for a in raw])[:, None]
+            # column-major, so each column's tail points come from one contiguous run
+            F = np.empty((sum(b.A.shape[0] for b in held), len(self.fcols)), order="F")
+            fit = np.empty((F.shape[0], 1))
+            r = 0
+            for b in held:
+                a = b.A / b.A[:, :1] if self.weighted else b.A
+                F[r: r + a.shape[0]] = a[:, self.fcols]
+                fit[r: r + a.shape[0], 0] = a[:, self.cols] @ self.beta
+                r += a.shape[0]
         self.feature_grid = Grid.from_sample(F, whole)
         self.fitted_grid = fgrid = Grid.from_sample(fit, whole)
         hscale = fgrid.scale[0] * HEAT_CELLS / fgrid.cells
