@@ -6,7 +6,7 @@
   Breusch–Pagan sums Σ z e².
 * ``grid_bin_sums`` (``grid_bin_sums_rows`` for a range of rows): per chosen column of a block,
   the cell of every row on a uniform grid and, per cell, the row count, Σx, Σe and Σe² (a multiply
-  and a store per value: measured ≈ 2.5 ns per value here, against ≈ 13 ns for sample-quantile
+  and one 4-wide add per value: measured ≈ 1.4 ns per value here, against ≈ 13 ns for sample-quantile
   edges found through a lookup table and ≈ 30 ns by binary search, whose branches mispredict).
 * ``square_moments``: mean and centred sum of squares of e² (one block, two sweeps).
 * ``grid_index``: the grid cell of each value of one column (fitted values, residuals).
@@ -26,6 +26,8 @@ from __future__ import annotations
 
 import numba
 import numpy as np
+
+from tallfit.kernels.lanes import add4
 
 
 # Kernels index views that start at 0 (a[r0:r1], then a[i]): with a loop over range(r0, r1),
@@ -59,12 +61,8 @@ def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, kbuf):
             kb[i] = _cell(a[i], lj, sj, cells)
         o = out[j]  # one column's cells (33 KB at 1024 cells)
         for i in range(a.shape[0]):
-            k = kb[i]
             r = ev[i]
-            o[k, 0] += 1.0
-            o[k, 1] += a[i]
-            o[k, 2] += r
-            o[k, 3] += r * r
+            add4(o, kb[i], 1.0, a[i], r, r * r)  # one 4-wide update: kernels/lanes.py
 
 
 @numba.njit(cache=True, nogil=True)
