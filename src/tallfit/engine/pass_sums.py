@@ -134,17 +134,22 @@ class PassPlan:
         if not held:
             F, fit = np.zeros((0, len(self.fcols))), np.zeros((0, 1))
         else:
-            # column-major, so each column's tail points come from one contiguous run
+            # column-major, so each column's tail points come from one contiguous run (partitioned
+            # in place: this copy is the grids' own); column by column, with no fancy-index copies
             F = np.empty((sum(b.A.shape[0] for b in held), len(self.fcols)), order="F")
             fit = np.empty((F.shape[0], 1))
             r = 0
             for b in held:
                 a = b.A / b.A[:, :1] if self.weighted else b.A
-                F[r: r + a.shape[0]] = a[:, self.fcols]
-                fit[r: r + a.shape[0], 0] = a[:, self.cols] @ self.beta
+                rows = slice(r, r + a.shape[0])
+                for j, c in enumerate(self.fcols):
+                    F[rows, j] = a[:, c]
+                beta = np.zeros(a.shape[1])
+                beta[self.cols] = self.beta
+                np.matmul(a, beta, out=fit[rows, 0])
                 r += a.shape[0]
-        self.feature_grid = Grid.from_sample(F, whole)
-        self.fitted_grid = fgrid = Grid.from_sample(fit, whole)
+        self.feature_grid = Grid.from_sample(F, whole, overwrite=True)
+        self.fitted_grid = fgrid = Grid.from_sample(fit, whole, overwrite=True)
         hscale = fgrid.scale[0] * HEAT_CELLS / fgrid.cells
         self.heat_axes = {"fitted_lo": float(fgrid.lo[0]), "fitted_scale": float(hscale),
                           "resid_lo": -4.0 * self.s, "resid_scale": HEAT_CELLS / (8.0 * self.s),
