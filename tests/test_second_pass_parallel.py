@@ -157,7 +157,8 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
     e, fitted, h = np.full(m, np.nan), np.full(m, np.nan), np.full(m, np.nan)
     g, s = np.zeros(p), np.zeros(p)
     y = np.asfortranarray(A)[:, k]
-    tile_scores(ZE, n, 100, y, mode, V, e, fitted, h, g, s)
+    ZE2 = ZE.copy(order="F")
+    tile_scores(ZE, n, 100, y, mode, V, e, fitted, h, g, s, True)
     assert np.isnan(e[:100]).all() and np.isnan(h[:100]).all()
     np.testing.assert_array_equal(e[100:], ee)
     np.testing.assert_allclose(fitted[100:], y[100:] - ee, rtol=1e-15)
@@ -169,3 +170,15 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
         assert np.array_equal(np.isfinite(V), finite)
     np.testing.assert_allclose(s, sr, rtol=1e-12)
     np.testing.assert_allclose(g, gr, rtol=1e-12)
+    # without keep_scores, HC2/HC3 put the sandwich rows in the scores' place and leave V alone
+    V2 = np.full_like(V, 7.0)
+    g2, s2 = np.zeros(p), np.zeros(p)
+    tile_scores(ZE2, n, 100, y, mode, V2, e, fitted, h, g2, s2, False)
+    np.testing.assert_array_equal(s2, s)
+    np.testing.assert_array_equal(g2, g)
+    if mode in (SCORES_HC2, SCORES_HC3):
+        np.testing.assert_array_equal(ZE2[:, :p][np.isfinite(V)], V[np.isfinite(V)])
+        assert (V2 == 7.0).all()
+    else:
+        np.testing.assert_array_equal(ZE2[:, :p], ZE[:, :p])
+        np.testing.assert_array_equal(V2[np.isfinite(V)], V[np.isfinite(V)])

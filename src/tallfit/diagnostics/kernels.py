@@ -131,11 +131,13 @@ SCORES_ALL = 4  # V = [w | d·w], d = h / (1 − h): every HC meat from one Gram
 # reassoc lets the column sums use SIMD lanes (a fixed order for a given build: deterministic);
 # no flag that assumes finite values, since ∞ marks a row of leverage 1
 @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz"})
-def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
+def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum, keep_scores):
     """From a tile ZE = [Z | e] (rows 0..m-1; Z = X R11⁻¹ and e = y − Xβ, one product of the design
     rows with PassPlan.tile_map), for the block's rows r0..r0+m-1: e, fitted = y − e and the
-    leverage h = ‖zᵢ‖²; Z's columns become the scores w = e·z (in place) and V the sandwich rows
-    of ``mode`` (V unused for SCORES); score_sum += Σ w, bp_g += Σ e²·z (Breusch–Pagan)."""
+    leverage h = ‖zᵢ‖²; score_sum += Σ w and bp_g += Σ e²·z (Breusch–Pagan) for the scores
+    w = e·z. Z's columns become the scores (in place) and V the sandwich rows of ``mode`` (V unused
+    for SCORES); or, for HC2 and HC3 unless ``keep_scores``, Z's columns become the sandwich rows
+    themselves (V unused): no second tile to write and read back when nothing else needs w."""
     p = ZE.shape[1] - 1
     ev = ZE[:m, p]
     eo = e[r0 : r0 + m]
@@ -172,7 +174,10 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum):
             g += w * ev[i]
         score_sum[j] += s
         bp_g[j] += g
-        if mode == SCORES_HC2 or mode == SCORES_HC3:
+        if (mode == SCORES_HC2 or mode == SCORES_HC3) and not keep_scores:
+            for i in range(m):
+                zj[i] = zj[i] * c[i]
+        elif mode == SCORES_HC2 or mode == SCORES_HC3:
             vj = V[:m, j]
             for i in range(m):
                 vj[i] = zj[i] * c[i]

@@ -191,7 +191,8 @@ class PartSums:
             if len(self._tiles) >= 4:  # full tiles and a few block ends: keep it bounded
                 self._tiles.clear()
             p, mode = self.plan.p, self.out.sandwich.mode
-            q = 0 if mode == SCORES else 2 * p if mode == SCORES_ALL else p
+            # HC2/HC3 rows overwrite the scores in place unless cluster sums need the scores too
+            q = 2 * p if mode == SCORES_ALL else p if mode != SCORES and self.plan.cluster else 0
             bufs = self._tiles[rows] = (np.empty((rows, p + 1), order="F"), np.empty((rows, q), order="F"))
         return bufs
 
@@ -234,6 +235,7 @@ class PartSums:
         split = int(plan.cols[half - 1]) + 1 if half else 0
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
+        in_place = mode == SCORES or (mode != SCORES_ALL and not plan.cluster)  # sandwich rows in Z's place
         for a in range(0, m, TILE_ROWS):
             b = min(a + TILE_ROWS, m)
             ZE, V = self._tile(b - a)
@@ -241,9 +243,9 @@ class PartSums:
             # design columns up to cols[p/2 − 1] (R11⁻¹ is upper triangular): ¾ of one dense product
             np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
             np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
-            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum)
-            W = ZE[:, :p]  # the scores
-            sandwich.add_rows(W if mode == SCORES else V)
+            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place)
+            W = ZE[:, :p]  # the scores (or the sandwich rows when in_place)
+            sandwich.add_rows(W if in_place else V)
             for c, sums, g in zip(codes, out.clusters, groups):
                 sums.update(c[a:b], W, g)
         sandwich.add_residuals(e, h)
