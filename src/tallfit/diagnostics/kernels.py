@@ -174,11 +174,8 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum, keep_score
             g += w * ev[i]
         score_sum[j] += s
         bp_g[j] += g
-        if (mode == SCORES_HC2 or mode == SCORES_HC3) and not keep_scores:
-            for i in range(m):
-                zj[i] = zj[i] * c[i]
-        elif mode == SCORES_HC2 or mode == SCORES_HC3:
-            vj = V[:m, j]
+        if mode == SCORES_HC2 or mode == SCORES_HC3:
+            vj = V[:m, j] if keep_scores else zj
             for i in range(m):
                 vj[i] = zj[i] * c[i]
         elif mode == SCORES_ALL:

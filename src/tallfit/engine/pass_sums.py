@@ -176,6 +176,10 @@ class PartSums:
             out.top_leverage = TopRows(plan.top_k, "leverage")
         self._tiles: dict[int, tuple] = {}
         self._vec: tuple | None = None
+        # the sandwich rows take the scores' place in the tile unless cluster sums need the scores
+        # too (HC2/HC3) or they are 2p wide ("all"); V is then not used
+        mode = out.sandwich.mode
+        self._in_place = mode == SCORES or (mode != SCORES_ALL and not plan.cluster)
 
     def _start_bins(self) -> None:
         plan, out = self.plan, self.out
@@ -191,8 +195,7 @@ class PartSums:
             if len(self._tiles) >= 4:  # full tiles and a few block ends: keep it bounded
                 self._tiles.clear()
             p, mode = self.plan.p, self.out.sandwich.mode
-            # HC2/HC3 rows overwrite the scores in place unless cluster sums need the scores too
-            q = 2 * p if mode == SCORES_ALL else p if mode != SCORES and self.plan.cluster else 0
+            q = 0 if self._in_place else 2 * p if mode == SCORES_ALL else p
             bufs = self._tiles[rows] = (np.empty((rows, p + 1), order="F"), np.empty((rows, q), order="F"))
         return bufs
 
@@ -235,7 +238,7 @@ class PartSums:
         split = int(plan.cols[half - 1]) + 1 if half else 0
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
-        in_place = mode == SCORES or (mode != SCORES_ALL and not plan.cluster)  # sandwich rows in Z's place
+        in_place = self._in_place
         for a in range(0, m, TILE_ROWS):
             b = min(a + TILE_ROWS, m)
             ZE, V = self._tile(b - a)
