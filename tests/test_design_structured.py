@@ -174,3 +174,63 @@ def test_level_tables_equal_python_dictionaries():
     ids = it.ids(keys)
     ref = {}
     assert ids.tolist() == [ref.setdefault(int(k), len(ref)) for k in keys]
+
+
+def test_table_adoption_and_shared_seed_equal_plain_hashing():
+    """Property: adopting another table's labels (prefix matched by buffers, or hashed) and a fresh
+    table started from the shared seed give the ids a Python dictionary gives."""
+    from tallfit.design import categorical
+    from tallfit.design.categorical import StringTable
+
+    rng = np.random.default_rng(1)
+    base = [f"k{v:06d}" for v in rng.permutation(9000)]
+    extra = [f"x{v}" for v in range(50)]
+
+    def table(labels):
+        t = StringTable()
+        t.ids(pa.array(labels))
+        return t
+
+    def expect(mine, theirs):
+        ref = {s: i for i, s in enumerate(mine)}
+        return [ref.setdefault(s, len(ref)) for s in theirs]
+
+    cases = [(base, base + extra), (base + extra, base), (base, base), (extra + base, base),
+             (base[:4000] + extra, base)]
+    for mine, theirs in cases:
+        a, b = table(mine), table(theirs)
+        got = a.adopt(b)
+        assert got.tolist() == expect(mine, theirs)
+        assert a.labels().to_pylist() == list(dict.fromkeys(mine + theirs))
+    categorical._seed = None
+    first = table(base)  # hashed and kept as the seed
+    again = StringTable()
+    ids = again.ids(pa.array(base))  # from the seed: the same state
+    assert ids.tolist() == list(range(len(base)))
+    assert categorical._seed is not None and categorical._seed[0].equals(pa.array(base))
+    assert np.array_equal(again.table, first.table) and again.n == first.n
+    assert again.ids(pa.array(extra + base[:5])).tolist() == list(range(9000, 9050)) + [0, 1, 2, 3, 4]
+    assert first.n == 9000  # the seed's copy was not shared with the table that grew
+    other = StringTable().ids(pa.array(base[::-1]))  # same length, other labels order: hashed
+    assert other.tolist() == list(range(len(base)))
+    assert StringTable().ids(pa.array(base)).tolist() == list(range(len(base)))
+
+
+def test_new_level_codes_numbered_in_code_order():
+    """number_new_codes against a numpy reference (np.unique of the codes not numbered yet)."""
+    from tallfit.kernels.groups import number_new_codes
+
+    rng = np.random.default_rng(2)
+    index = np.full(40, -1, dtype=np.int64)
+    ref = index.copy()
+    members = 0
+    for _ in range(6):
+        codes = rng.integers(0, 40, 300) if _ else rng.integers(0, 10, 300)
+        out = np.empty((300, 2), dtype=np.int64)
+        fresh = np.empty(40, dtype=np.int64)
+        n = number_new_codes(codes, index, members, out, 1, fresh)
+        new = np.unique(codes[ref[codes] < 0])
+        ref[new] = members + np.arange(new.size)
+        assert n == new.size and fresh[:n].tolist() == new.tolist()
+        assert np.array_equal(out[:, 1], ref[codes]) and np.array_equal(index, ref)
+        members += n

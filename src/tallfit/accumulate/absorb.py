@@ -24,7 +24,7 @@ from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.accumulate.onehot import count_block, grow_rows
 from tallfit.design.categorical import LevelCoder
 from tallfit.design.spec import indicator_name
-from tallfit.kernels.groups import merge_levels, within_rows, within_rows_levels
+from tallfit.kernels.groups import merge_levels, number_new_codes, within_rows, within_rows_levels
 from tallfit.kernels.tsqr import fold_rows
 
 
@@ -127,10 +127,9 @@ class AbsorbAccumulator:
             n_lev = self.coders[c].n_columns
             if g.size < n_lev:
                 g = self.global_of[c] = np.concatenate([g, np.full(n_lev - g.size, -1, np.int64)])
-            for code in np.unique(lc[g[lc] < 0]):
-                g[code] = len(self.members)
-                self.members.append((c, int(code)))
-            cols[:, c] = g[lc]
+            fresh = np.empty(g.size, dtype=np.int64)
+            count = number_new_codes(np.asarray(lc, dtype=np.int64), g, len(self.members), cols, c, fresh)
+            self.members.extend((c, int(code)) for code in fresh[:count])
         L = len(self.members)
         self._grow_moments(G, L)
         return cols, L

@@ -9,6 +9,8 @@ final columns, the reference to none, and unseen levels follow a policy.
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -50,6 +52,15 @@ def _pow2(n: int) -> int:
     return 1 << max(4, int(n - 1).bit_length())
 
 
+#: A fresh table's first labels, when there are at least this many, are looked up in (and kept
+#: as) the shared seed below: the parts of a data set read apart often start from the same
+#: dictionary (a Parquet file's row groups written from one), hashed once instead of per part.
+SEED_LABELS = 4096
+SEED_MAX_LABELS = 1 << 20  # beyond this the copy kept (≈ 50 bytes per label) is not worth it
+_seed_lock = threading.Lock()
+_seed: tuple | None = None  # (labels, ids, n, used, key_off, key_data, table) of one fresh table
+
+
 class StringTable:
     """Labels → dense ids in order of discovery (a numba hash table: no Python loop per label)."""
 
@@ -62,6 +73,40 @@ class StringTable:
 
     def ids(self, strings: pa.Array) -> np.ndarray:
         """Id of every entry of a string array without nulls (new labels get the next ids)."""
+        if self.n == 0 and SEED_LABELS <= len(strings) <= SEED_MAX_LABELS:
+            return self._seeded(strings)
+        return self._hashed(strings)
+
+    def _seeded(self, strings: pa.Array) -> np.ndarray:
+        """``ids`` on a fresh table: from the shared seed when it holds the same labels (the
+        table's state is then the very one hashing them gives), else hashed and kept as the seed."""
+        global _seed
+        with _seed_lock:
+            seed = _seed
+        if seed is not None and seed[0].equals(strings):
+            _, ids, self.n, self.used, off, data, table = seed
+            self.key_off, self.key_data, self.table = off.copy(), data.copy(), table.copy()
+            return ids.copy()
+        ids = self._hashed(strings)
+        kept = (strings, ids.copy(), self.n, self.used, self.key_off.copy(), self.key_data.copy(), self.table.copy())
+        with _seed_lock:
+            _seed = kept
+        return ids
+
+    def adopt(self, other: "StringTable") -> np.ndarray:
+        """Ids here of the other table's labels, in its id order (new ones appended). When the
+        labels of one table begin with all of the other's, in the same order (parts whose
+        dictionaries are the same), that run is matched by comparing buffers, not by hashing."""
+        n = min(self.n, other.n)
+        if n and np.array_equal(self.key_off[: n + 1], other.key_off[: n + 1]) and np.array_equal(
+                self.key_data[: self.key_off[n]], other.key_data[: other.key_off[n]]):
+            if other.n == n:
+                return np.arange(n, dtype=np.int64)
+            # self's labels are all of the first n: the other's later ones are new here
+            return np.concatenate([np.arange(n, dtype=np.int64), self._hashed(other.labels(n))])
+        return self.ids(other.labels())
+
+    def _hashed(self, strings: pa.Array) -> np.ndarray:
         d = len(strings)
         bufs = strings.buffers()
         wide = pa.types.is_large_string(strings.type)
@@ -78,11 +123,12 @@ class StringTable:
                                             self.table, self.n, self.used)
         return ids
 
-    def labels(self) -> pa.Array:
-        """The known strings in id order, as an Arrow array over this table's own buffers (copied)."""
-        off = np.ascontiguousarray(self.key_off[: self.n + 1])
-        data = np.ascontiguousarray(self.key_data[: self.used])
-        return pa.LargeStringArray.from_buffers(self.n, pa.py_buffer(off.copy()), pa.py_buffer(data.copy()))
+    def labels(self, start: int = 0) -> pa.Array:
+        """The known strings in id order (from id ``start`` on), as an Arrow array over copies of
+        this table's buffers."""
+        off = self.key_off[start: self.n + 1] - self.key_off[start]
+        data = np.ascontiguousarray(self.key_data[self.key_off[start]: self.used])
+        return pa.LargeStringArray.from_buffers(self.n - start, pa.py_buffer(off.copy()), pa.py_buffer(data.copy()))
 
 
 class IntTable:
@@ -144,7 +190,7 @@ class LevelCoder:
         for (a key of 10^5 levels read in many parts would otherwise build this dict per part)."""
         table = self._table
         if table is not None and len(self._index) < table.n:
-            for level in table.labels().slice(len(self._index)).to_pylist():
+            for level in table.labels(len(self._index)).to_pylist():
                 self._index[level] = len(self._index)
         return self._index
 
@@ -208,13 +254,16 @@ class LevelCoder:
         n = other.n_columns
         if n == 0:
             return np.zeros(0, dtype=np.int64)
-        labels = other._table.labels() if other._table is not None else \
-            pa.array(sorted(other.index, key=other.index.__getitem__), type=pa.string())
         if self._table is None and not self._index:
             self._table = StringTable()
-        if self._table is None:  # levels found by the general path: one by one
-            return np.array([self._column_of(level, "") for level in labels.to_pylist()], dtype=np.int64)
-        ids = self._table.ids(labels)
+        if self._table is not None and other._table is not None:
+            ids = self._table.adopt(other._table)
+        else:
+            labels = other._table.labels() if other._table is not None else \
+                pa.array(sorted(other.index, key=other.index.__getitem__), type=pa.string())
+            if self._table is None:  # levels found by the general path: one by one
+                return np.array([self._column_of(level, "") for level in labels.to_pylist()], dtype=np.int64)
+            ids = self._table.ids(labels)
         self.n_columns = self._table.n
         return ids
 
