@@ -202,18 +202,21 @@ def test_table_adoption_and_shared_seed_equal_plain_hashing():
         got = a.adopt(b)
         assert got.tolist() == expect(mine, theirs)
         assert a.labels().to_pylist() == list(dict.fromkeys(mine + theirs))
-    categorical._seed = None
-    first = table(base)  # hashed and kept as the seed
-    again = StringTable()
-    ids = again.ids(pa.array(base))  # from the seed: the same state
-    assert ids.tolist() == list(range(len(base)))
-    assert categorical._seed is not None and categorical._seed[0].equals(pa.array(base))
-    assert np.array_equal(again.table, first.table) and again.n == first.n
-    assert again.ids(pa.array(extra + base[:5])).tolist() == list(range(9000, 9050)) + [0, 1, 2, 3, 4]
-    assert first.n == 9000  # the seed's copy was not shared with the table that grew
-    other = StringTable().ids(pa.array(base[::-1]))  # same length, other labels order: hashed
-    assert other.tolist() == list(range(len(base)))
-    assert StringTable().ids(pa.array(base)).tolist() == list(range(len(base)))
+    table(base)
+    assert categorical._seed is None  # outside shared_labels() nothing is kept
+    with categorical.shared_labels():
+        first = table(base)  # hashed and kept as the seed
+        again = StringTable()
+        ids = again.ids(pa.array(base))  # from the seed: the same state
+        assert ids.tolist() == list(range(len(base)))
+        assert categorical._seed is not None and categorical._seed[0].equals(pa.array(base))
+        assert np.array_equal(again.table, first.table) and again.n == first.n
+        assert again.ids(pa.array(extra + base[:5])).tolist() == list(range(9000, 9050)) + [0, 1, 2, 3, 4]
+        assert first.n == 9000  # the seed's copy was not shared with the table that grew
+        other = StringTable().ids(pa.array(base[::-1]))  # same length, other labels order: hashed
+        assert other.tolist() == list(range(len(base)))
+        assert StringTable().ids(pa.array(base)).tolist() == list(range(len(base)))
+    assert categorical._seed is None  # dropped when the pass ends
 
 
 def test_new_level_codes_numbered_in_code_order():

@@ -9,6 +9,7 @@ final columns, the reference to none, and unseen levels follow a policy.
 
 from __future__ import annotations
 
+import contextlib
 import threading
 
 import numpy as np
@@ -52,13 +53,31 @@ def _pow2(n: int) -> int:
     return 1 << max(4, int(n - 1).bit_length())
 
 
-#: A fresh table's first labels, when there are at least this many, are looked up in (and kept
-#: as) the shared seed below: the parts of a data set read apart often start from the same
-#: dictionary (a Parquet file's row groups written from one), hashed once instead of per part.
+#: Inside :func:`shared_labels` (a pass over parts), a fresh table's first labels, when there are
+#: at least this many, are looked up in (and kept as) the shared seed below: the parts of a data
+#: set read apart often start from the same dictionary (a Parquet file's row groups written from
+#: one), hashed once instead of per part.
 SEED_LABELS = 4096
-SEED_MAX_LABELS = 1 << 20  # beyond this the copy kept (≈ 50 bytes per label) is not worth it
+SEED_MAX_LABELS = 1 << 20  # beyond this the copy kept (≈ 70 bytes per label) is not worth it
 _seed_lock = threading.Lock()
 _seed: tuple | None = None  # (labels, ids, n, used, key_off, key_data, table) of one fresh table
+_seed_users = 0
+
+
+@contextlib.contextmanager
+def shared_labels():
+    """Let fresh label tables share the hashing of a common first dictionary while this lasts;
+    the seed is dropped when the last user leaves (nothing stays behind in the process)."""
+    global _seed, _seed_users
+    with _seed_lock:
+        _seed_users += 1
+    try:
+        yield
+    finally:
+        with _seed_lock:
+            _seed_users -= 1
+            if _seed_users == 0:
+                _seed = None
 
 
 class StringTable:
@@ -73,7 +92,7 @@ class StringTable:
 
     def ids(self, strings: pa.Array) -> np.ndarray:
         """Id of every entry of a string array without nulls (new labels get the next ids)."""
-        if self.n == 0 and SEED_LABELS <= len(strings) <= SEED_MAX_LABELS:
+        if self.n == 0 and _seed_users and SEED_LABELS <= len(strings) <= SEED_MAX_LABELS:
             return self._seeded(strings)
         return self._hashed(strings)
 
@@ -90,7 +109,8 @@ class StringTable:
         ids = self._hashed(strings)
         kept = (strings, ids.copy(), self.n, self.used, self.key_off.copy(), self.key_data.copy(), self.table.copy())
         with _seed_lock:
-            _seed = kept
+            if _seed_users:
+                _seed = kept
         return ids
 
     def adopt(self, other: "StringTable") -> np.ndarray:

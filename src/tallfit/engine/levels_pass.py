@@ -19,6 +19,7 @@ import numpy as np
 
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.accumulate.onehot import MAX_CELLS, MAX_COLUMNS, CellAccumulator, count_block
+from tallfit.design.categorical import shared_labels
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec, indicator_name
 from tallfit.kernels.tsqr import fold_rows
@@ -90,7 +91,8 @@ def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int 
             fold.put(index, acc)
         return run
 
-    run_tasks([task(i, sub, f) for i, (sub, f) in enumerate(parts)], w)
+    with shared_labels():  # parts starting from the same label dictionary hash it once
+        run_tasks([task(i, sub, f) for i, (sub, f) in enumerate(parts)], w)
     return fold.result()
 
 

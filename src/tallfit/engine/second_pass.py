@@ -21,6 +21,7 @@ import threading
 from collections.abc import Sequence
 from typing import Any
 
+from tallfit.design.categorical import shared_labels
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
 from tallfit.engine.parallel import (BufferPool, OrderedMerge, offset_progress, read_part, run_tasks, source_parts,
                                      worker_count)
@@ -100,7 +101,8 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
             merged.put(i, part)
         return run
 
-    run_tasks([task(i) for i in range(len(parts))], w)
+    with shared_labels():  # cluster keys of parts with one label dictionary: hashed once
+        run_tasks([task(i) for i in range(len(parts))], w)
     return merged.result()
 
 
