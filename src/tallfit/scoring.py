@@ -16,7 +16,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-from scipy import stats
 from scipy.linalg import solve_triangular
 
 from tallfit.atomic import atomic_path, check_writable
@@ -25,6 +24,7 @@ from tallfit.engine.local import DEFAULT_BATCH_ROWS, chunk_label
 from tallfit.engine.prefetch import prefetched
 from tallfit.errors import ColumnNotFoundError, DesignError, OutputError
 from tallfit.results import FitResult
+from tallfit.solve.distributions import t_ppf
 from tallfit.solve.exact import reduce_factor
 from tallfit.inputs import as_source, source_label
 
@@ -96,7 +96,7 @@ class _Scorer:
             p = len(self.keep)
             self.R11 = Rr[:p, :p]
             self.s = model.inference.residual_std
-            self.q = float(stats.t.ppf(0.5 + level / 2.0, model.inference.df_resid))
+            self.q = float(t_ppf(0.5 + level / 2.0, model.inference.df_resid))
 
     def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
         X, ok = self.design.features(batch, label)

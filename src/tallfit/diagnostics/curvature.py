@@ -17,9 +17,9 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from tallfit.diagnostics.bins import BinnedSummary
+from tallfit.solve.distributions import chi2_sf
 
 ALPHA = 0.01
 MIN_BEND = 0.10  # common practice: judge the size of a misfit, not only its p-value (10 % of s is our choice)
@@ -51,7 +51,7 @@ def line_test(b: BinnedSummary, residual_sd: float, tests: int = 1) -> dict[str,
     dev = y - line
     Q = float(np.sum(w * dev * dev))
     df = B - 2
-    p = float(stats.chi2.sf(Q, df))
+    p = float(chi2_sf(Q, df))
     bend = float(np.max(np.abs(dev)) / residual_sd) if residual_sd > 0 else float("nan")
     _, quad = _weighted_poly(x, y, w, 2)
     direction = "bends upward (convex)" if quad[2] > 0 else "bends downward (concave)"

@@ -15,9 +15,9 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from tallfit.diagnostics.kernels import square_moments
+from tallfit.solve.distributions import chi2_sf, f_sf
 
 
 @dataclass
@@ -71,9 +71,9 @@ class BreuschPaganSums:
         return {
             "statistic": float(lm),
             "df": int(df),
-            "p_value": float(stats.chi2.sf(lm, df)) if df > 0 else float("nan"),
+            "p_value": float(chi2_sf(lm, df)) if df > 0 else float("nan"),
             "f_statistic": float(f),
-            "f_p_value": float(stats.f.sf(f, df_model, n - p)) if np.isfinite(f) else float("nan"),
+            "f_p_value": float(f_sf(f, df_model, n - p)) if np.isfinite(f) else float("nan"),
             "r_squared_aux": float(r2),
             "form": "Koenker (studentised)",
         }

@@ -13,9 +13,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import stats
 
 from tallfit.diagnostics.kernels import residual_moments
+from tallfit.solve.distributions import norm_ppf
 
 CELLS = 4800
 SPAN = 12.0  # in residual standard deviations
@@ -98,7 +98,7 @@ class ResidualSketch:
         sd = np.sqrt(self.sums[1] / self.n) if self.n else 1.0
         return {
             "prob": probs.tolist(),
-            "normal": (stats.norm.ppf(probs) * sd).tolist(),
+            "normal": (norm_ppf(probs) * sd).tolist(),
             "residual": [self.quantile(p) for p in probs],
         }
 

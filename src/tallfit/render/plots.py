@@ -15,7 +15,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.colors import LogNorm  # noqa: E402
-from scipy import stats  # noqa: E402
+
+from tallfit.solve.distributions import norm_pdf  # noqa: E402
 
 INK = "#263238"
 TEAL = "#00897b"
@@ -146,7 +147,7 @@ def residual_distribution(res: dict[str, Any]):
         a1, a2 = fig.subplots(1, 2)
         a1.bar(edges[:-1], counts / (total * width), width=width, align="edge", color=TEAL, alpha=0.75, lw=0)
         xs = np.linspace(edges[0], edges[-1], 200)
-        a1.plot(xs, stats.norm.pdf(xs, 0, res["rmse"]), color=INK, lw=1, label="normal, same sd")
+        a1.plot(xs, norm_pdf(xs, 0, res["rmse"]), color=INK, lw=1, label="normal, same sd")
         a1.set_xlabel("residual")
         a1.set_title("residual distribution")
         a1.legend(frameon=False, fontsize=6.5)

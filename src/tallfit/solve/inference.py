@@ -16,10 +16,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 from scipy.linalg import solve_triangular
 
 from tallfit.errors import DesignError
+from tallfit.solve.distributions import f_sf, t_ppf, t_sf
 
 
 @dataclass
@@ -91,8 +91,8 @@ def infer(
     se = np.sqrt(np.maximum(np.diagonal(cov), 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
         t = beta / se
-    p_value = 2.0 * stats.t.sf(np.abs(t), df_resid)
-    q = stats.t.ppf(0.5 + conf_level / 2.0, df_resid)
+    p_value = 2.0 * t_sf(np.abs(t), df_resid)
+    q = t_ppf(0.5 + conf_level / 2.0, df_resid)
     centered = bool(intercept)
     reg_ss = float(np.sum(r12[1:] ** 2)) if centered else float(np.sum(r12**2))
     tss = reg_ss + rss
@@ -103,7 +103,7 @@ def infer(
         adj = 1.0 - (1.0 - r2) * dof_ratio
         if df_model > 0:
             f = (reg_ss / df_model) / s2 if s2 > 0 else float("inf")
-            f_p = float(stats.f.sf(f, df_model, df_resid)) if np.isfinite(f) else 0.0
+            f_p = float(f_sf(f, df_model, df_resid)) if np.isfinite(f) else 0.0
         else:
             f, f_p = float("nan"), float("nan")
         llf = -0.5 * n_used * (np.log(2.0 * np.pi * rss / n_used) + 1.0) + 0.5 * log_weight_sum

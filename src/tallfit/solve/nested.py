@@ -15,9 +15,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from tallfit.errors import DesignError
+from tallfit.solve.distributions import f_sf
 from tallfit.solve.exact import find_aliases
 from tallfit.solve.selection import subset_factor, subset_rss
 
@@ -70,7 +70,7 @@ def nested_f_test(R: np.ndarray, n: int, names: list[str], base: list[str], adde
         raise DesignError(f"{n} rows for {len(full)} coefficients: the F test needs more rows than coefficients")
     rss_b, rss_f = subset_rss(R, b), subset_rss(R, full)
     f = ((rss_b - rss_f) / (df_base - df_full)) / (rss_f / df_full)
-    p = float(stats.f.sf(f, df_base - df_full, df_full))
+    p = float(f_sf(f, df_base - df_full, df_full))
     return NestedTest([design[j] for j in b], [design[j] for j in a], rss_b, rss_f, df_base, df_full, float(f), p)
 
 
@@ -88,6 +88,6 @@ def sequential_table(R: np.ndarray, n: int, names: list[str], intercept: bool) -
         ss = float(R[j, p] ** 2)
         f = ss / s2
         rows.append({"term": names[j], "df": 1, "sum_sq": ss, "f_statistic": f,
-                     "p_value": float(stats.f.sf(f, 1, df_resid))})
+                     "p_value": float(f_sf(f, 1, df_resid))})
     rows.append({"term": "residual", "df": df_resid, "sum_sq": rss})
     return rows

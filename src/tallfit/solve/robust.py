@@ -23,12 +23,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import stats
 from scipy.linalg import solve_triangular
 
 from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, SCORES_HC2, SCORES_HC3, scatter_rows
 from tallfit.errors import DesignError
 from tallfit.kernels.products import gram as cross_products
+from tallfit.solve.distributions import t_ppf, t_sf
 
 KINDS = ("HC0", "HC1", "HC2", "HC3")
 FEW_CLUSTERS = 50  # common practice: fewer than about 40-50 clusters make cluster errors unreliable
@@ -219,11 +219,11 @@ def coefficient_table(beta: np.ndarray, V: np.ndarray, df: int, level: float) ->
     se = np.sqrt(np.maximum(np.diagonal(V), 0.0)) if np.all(np.isfinite(V)) else np.full(len(beta), np.nan)
     with np.errstate(divide="ignore", invalid="ignore"):
         t = beta / se
-    q = float(stats.t.ppf(0.5 + level / 2.0, df))
+    q = float(t_ppf(0.5 + level / 2.0, df))
     return {
         "std_error": se.tolist(),
         "t": t.tolist(),
-        "p_value": (2.0 * stats.t.sf(np.abs(t), df)).tolist(),
+        "p_value": (2.0 * t_sf(np.abs(t), df)).tolist(),
         "ci_low": (beta - q * se).tolist(),
         "ci_high": (beta + q * se).tolist(),
         "df": int(df),
