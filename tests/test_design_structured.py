@@ -237,3 +237,48 @@ def test_new_level_codes_numbered_in_code_order():
         assert n == new.size and fresh[:n].tolist() == new.tolist()
         assert np.array_equal(out[:, 1], ref[codes]) and np.array_equal(index, ref)
         members += n
+
+
+@pytest.mark.parametrize("C", [1, 2, 3])
+def test_key_level_moments_equal_numpy(C):
+    """within_rows_levels (one, two — its written-out case — and three categorical columns) against
+    direct numpy sums: per (key level, indicator) weights, the indicator cross weights, the sums of
+    w(z − s_g) with s_g the level's first row, the level means, and the rows' Gram equal to the
+    weighted within-level co-moment. Data invented (a property test)."""
+    from tallfit.kernels.groups import within_rows_levels
+
+    rng = np.random.default_rng(C)
+    m, k, G = 3000, 4, 40
+    sizes = [3, 5, 7][:C]
+    Z = np.asfortranarray(rng.standard_normal((m, k)) + 5.0)
+    g = rng.integers(0, G, m)
+    first = [0] + list(np.cumsum(sizes)[:-1])
+    levels = np.column_stack([f + rng.integers(0, s, m) for f, s in zip(first, sizes)]).astype(np.int64)
+    w = rng.uniform(0.5, 2.0, m)
+    w[::17] = 0.0  # zero weights are skipped
+    L = sum(sizes)
+    state = np.zeros((G, 1 + 2 * k))
+    kl, cross, sums = np.zeros((G, L)), np.zeros((L, L)), np.zeros((L, k))
+    out = np.zeros((m, k), order="F")
+    half = m // 2  # in two calls, as blocks arrive
+    r = within_rows_levels(Z[:half], g[:half], levels[:half], w[:half], state, kl, cross, sums, out)
+    r += within_rows_levels(np.asfortranarray(Z[half:]), g[half:], levels[half:], w[half:], state, kl, cross,
+                            sums, out[r:])
+    used = w > 0
+    Zu, gu, lu, wu = Z[used], g[used], levels[used], w[used]
+    D = np.zeros((used.sum(), L))
+    for c in range(C):
+        D[np.arange(len(gu)), lu[:, c]] = 1.0
+    onehot_g = np.zeros((len(gu), G))
+    onehot_g[np.arange(len(gu)), gu] = 1.0
+    np.testing.assert_allclose(kl, onehot_g.T @ (wu[:, None] * D), rtol=1e-13)
+    np.testing.assert_allclose(np.triu(cross), np.triu(D.T @ (wu[:, None] * D)), rtol=1e-13)
+    shift = np.array([Zu[np.flatnonzero(gu == v)[0]] for v in range(G)])
+    np.testing.assert_allclose(sums, D.T @ (wu[:, None] * (Zu - shift[gu])), rtol=1e-11, atol=1e-11)
+    W = onehot_g.T @ wu
+    means = (onehot_g.T @ (wu[:, None] * Zu)) / W[:, None]
+    np.testing.assert_allclose(state[:, 0], W, rtol=1e-13)
+    np.testing.assert_allclose(state[:, 1:1 + k], means, rtol=1e-12)
+    dev = Zu - means[gu]
+    np.testing.assert_allclose(out[:r].T @ out[:r], dev.T @ (wu[:, None] * dev), rtol=1e-10)
+    assert r == used.sum() - G  # a level's first row writes nothing
