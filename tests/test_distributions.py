@@ -26,6 +26,8 @@ def test_equal_scipy_stats():
     p = np.array([1e-9, 0.025, 0.5, 0.9])
     np.testing.assert_array_equal(d.norm_ppf(p), stats.norm.ppf(p))
     np.testing.assert_allclose(d.norm_pdf(x, 0.3, 2.0), stats.norm.pdf(x, 0.3, 2.0), rtol=1e-15)
+    for f, args in ((d.t_sf, (1.0, 3)), (d.t_ppf, (0.9, 3)), (d.f_sf, (1.0, 2, 3)), (d.chi2_sf, (1.0, 2))):
+        assert isinstance(f(*args), np.float64)  # a scalar, as scipy.stats returns, not a 0-d array
     for bad in (0, -1.0):
         assert np.isnan(d.t_sf(1.0, bad)) and np.isnan(stats.t.sf(1.0, bad))
         assert np.isnan(d.f_sf(1.0, 2, bad)) and np.isnan(d.chi2_sf(1.0, bad))

@@ -4,7 +4,7 @@ scipy.stats computes these same functions with these same special functions (t: 
 F: fdtrc, χ²: chdtrc, normal: ndtri), so the values are identical; importing scipy.stats, though,
 took ≈ 0.6 s of every command's start here (its distribution classes build their docstrings on
 import), against none for scipy.special beside scipy.linalg. Degrees of freedom that are not
-positive give NaN, as scipy.stats gives.
+positive give NaN, as scipy.stats gives; scalars in give numpy scalars out, as there.
 """
 
 from __future__ import annotations
@@ -19,22 +19,22 @@ def _valid(*df) -> np.ndarray:
 
 def t_sf(x, df):
     """P(T > x) for Student's t with df degrees of freedom (df may be inf: the normal)."""
-    return np.where(_valid(df), special.stdtr(df, -np.asarray(x, dtype=float)), np.nan)
+    return np.where(_valid(df), special.stdtr(df, -np.asarray(x, dtype=float)), np.nan)[()]
 
 
 def t_ppf(q, df):
     """The q quantile of Student's t with df degrees of freedom."""
-    return np.where(_valid(df), special.stdtrit(df, q), np.nan)
+    return np.where(_valid(df), special.stdtrit(df, q), np.nan)[()]
 
 
 def f_sf(x, dfn, dfd):
     """P(F > x) for the F distribution with (dfn, dfd) degrees of freedom."""
-    return np.where(_valid(dfn, dfd), special.fdtrc(dfn, dfd, x), np.nan)
+    return np.where(_valid(dfn, dfd), special.fdtrc(dfn, dfd, x), np.nan)[()]
 
 
 def chi2_sf(x, df):
     """P(χ² > x) with df degrees of freedom."""
-    return np.where(_valid(df), special.chdtrc(df, x), np.nan)
+    return np.where(_valid(df), special.chdtrc(df, x), np.nan)[()]
 
 
 def norm_ppf(p):
