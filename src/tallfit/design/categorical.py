@@ -146,9 +146,9 @@ class StringTable:
     def labels(self, start: int = 0) -> pa.Array:
         """The known strings in id order (from id ``start`` on), as an Arrow array over copies of
         this table's buffers."""
-        off = self.key_off[start: self.n + 1] - self.key_off[start]
+        off = self.key_off[start: self.n + 1] - self.key_off[start]  # a new array already
         data = np.ascontiguousarray(self.key_data[self.key_off[start]: self.used])
-        return pa.LargeStringArray.from_buffers(self.n - start, pa.py_buffer(off.copy()), pa.py_buffer(data.copy()))
+        return pa.LargeStringArray.from_buffers(self.n - start, pa.py_buffer(off), pa.py_buffer(data.copy()))
 
 
 class IntTable:
