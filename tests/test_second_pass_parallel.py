@@ -182,3 +182,32 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
     else:
         np.testing.assert_array_equal(ZE2[:, :p], ZE[:, :p])
         np.testing.assert_array_equal(V2[np.isfinite(V)], V[np.isfinite(V)])
+
+
+def test_a_bad_part_while_the_grid_sample_is_gathered_fails_cleanly(tmp_path, fleet):
+    """Parts wait for the bin grids' sample; one failing then must stop the pass with its own error
+    (not hang the parts that wait for the sample, nor fold the parts parked before it)."""
+    import threading
+
+    table, _, _ = fleet
+    model = tallfit.fit(table, target="power_w", features=FEATURES, missing={"*": "fail"})
+    # p0 fails at its row 15,000 while p1, on the other worker, holds a full sample and waits
+    first = table.slice(0, 20_000)
+    cpu = first.column("cpu_util").to_numpy().copy()
+    cpu[15_000] = np.nan
+    pq.write_table(first.set_column(0, "cpu_util", pa.array(cpu)), tmp_path / "p0.parquet")
+    pq.write_table(table, tmp_path / "p1.parquet")
+    assert table.num_rows > SAMPLE_ROWS
+    caught: list[BaseException] = []
+
+    def run() -> None:
+        try:
+            second_pass(model, str(tmp_path), batch_rows=1000, workers=2)
+        except BaseException as exc:  # handed to the test's thread
+            caught.append(exc)
+
+    t = threading.Thread(target=run, daemon=True)
+    t.start()
+    t.join(60)
+    assert not t.is_alive(), "the pass hung after a part failed during the grid sample"
+    assert len(caught) == 1 and "p0.parquet" in str(caught[0]) and "cpu_util" in str(caught[0])

@@ -8,8 +8,9 @@ per block and how parts merge; this module: the scan and its schedule).
 Parallel: a data set of several parts (files, runs of Parquet row groups) is scanned part by part
 on every core, each part into its own sums, merged in part order (engine.parallel.OrderedMerge), so
 the result does not depend on the number of workers. The bin grids are set from the first rows of the
-data (up to ``SAMPLE_ROWS``, read before the parts start and then folded by their own part), so
-every part bins on the same grid and the grids are those of a single ordered scan.
+data (up to ``SAMPLE_ROWS``: every part holds its first blocks until those rows are in, so the
+decoding goes on on every core meanwhile; see ``_Sample``), so every part bins on the same grid and
+the grids are those of a single ordered scan.
 
 Memory: a few batches per worker, plus O(clusters × terms) for cluster sums and fixed-size
 histograms per part alive (the running merge, one per worker, and parts done ahead of their turn).
@@ -18,7 +19,7 @@ histograms per part alive (the running merge, one per worker, and parts done ahe
 from __future__ import annotations
 
 import threading
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
 from tallfit.design.categorical import shared_labels
@@ -60,6 +61,90 @@ def _scan(plan: PassPlan, source, blocks) -> PartSums:
     return part
 
 
+class _Sample:
+    """The grids' sample while the parts stream on every worker: each part holds its first blocks
+    (until it holds SAMPLE_ROWS used rows, or ends) and waits; as soon as the held blocks in part
+    order reach SAMPLE_ROWS (or every part has ended) the grids are set from exactly the rows one
+    ordered scan would take. Decoding thus goes on on every core while the sample is gathered.
+
+    A part that ends before then is parked; whoever sets the grids folds it (``on_parked``). No
+    wait can deadlock: a waiting part holds SAMPLE_ROWS rows, so the sample is complete once every
+    part before it has ended, and those parts (started before it) are running or parked."""
+
+    def __init__(self, plan: PassPlan, n_parts: int) -> None:
+        self.plan = plan
+        self.held: list[list] = [[] for _ in range(n_parts)]
+        self.rows = [0] * n_parts
+        self.ended = [False] * n_parts
+        self.parked: dict[int, PartSums] = {}
+        self.aborted = False
+        self.cond = threading.Condition()
+        self.on_parked: Callable[[int, PartSums, list], None] = lambda i, part, held: None
+
+    def hold_all(self, i: int, part: PartSums, blocks) -> bool:
+        """Read part i's first blocks until the grids are set (True: fold ``take(i)``, then the
+        rest of ``blocks``) or the part ends first (False: parked, or the pass was aborted)."""
+        if self.plan.ready:
+            return True
+        todo: list = []
+        while True:
+            block = None if self.aborted else next(blocks, None)
+            with self.cond:
+                if self.aborted:
+                    return False
+                if block is None:
+                    self.ended[i] = True
+                else:
+                    self.held[i].append(block)
+                    self.rows[i] += block.n_used
+                todo = self._try_set()
+                if not self.plan.ready and block is None:
+                    self.parked[i] = part
+                    go_on = False
+                    break
+                if self.plan.ready or self.rows[i] >= SAMPLE_ROWS:
+                    while not self.plan.ready and not self.aborted:
+                        self.cond.wait()
+                    go_on = not self.aborted
+                    break
+        for j, parked in todo:  # outside the lock: the folding of parts that ended early
+            self.on_parked(j, parked, self.take(j))
+        return go_on
+
+    def _try_set(self) -> list[tuple[int, PartSums]]:
+        """Set the grids if the held blocks decide the sample (under the lock); the parked parts
+        for the caller to fold."""
+        if self.plan.ready:
+            return []
+        sample, rows = [], 0
+        for j, held in enumerate(self.held):
+            for block in held:
+                sample.append(block)
+                rows += block.n_used
+                if rows >= SAMPLE_ROWS:
+                    return self._set(sample, whole=False)
+            if not self.ended[j]:
+                return []
+        return self._set(sample, whole=True)
+
+    def _set(self, sample: list, whole: bool) -> list[tuple[int, PartSums]]:
+        self.plan.set_grids(sample, whole=whole)
+        self.cond.notify_all()
+        todo = sorted(self.parked.items())
+        self.parked = {}
+        return todo
+
+    def take(self, i: int) -> list:
+        with self.cond:
+            held, self.held[i] = self.held[i], []
+            return held
+
+    def abort(self) -> None:
+        with self.cond:
+            self.aborted = True
+            self.cond.notify_all()
+
+
 def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], batch_rows: int,
                 progress, workers: int | None) -> PartSums:
     """Every part on its own worker; sums merged in part order (see the module note)."""
@@ -72,35 +157,34 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
         return iter(design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
                                   extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w)))
 
-    started: dict[int, Any] = {}
-    held: dict[int, list] = {}
-    if not plan.ready:  # the sample: the first rows in data order, later folded by their own part
-        sample, rows = [], 0
-        for i in range(len(parts)):
-            it = started[i] = stream(i)
-            held[i] = []
-            for block in it:
-                held[i].append(block)
-                sample.append(block)
-                rows += block.n_used
-                if rows >= SAMPLE_ROWS:
-                    break
-            if rows >= SAMPLE_ROWS:
-                break
-        plan.set_grids(sample, whole=rows < SAMPLE_ROWS)
     merged = OrderedMerge(lambda a, b: a.absorb(b))
+    sample = _Sample(plan, len(parts))
 
     def task(i: int):
         def run() -> None:
             part = PartSums(plan, parts[i][0], pool)
-            for block in held.pop(i, []):
+            blocks = stream(i)
+            try:
+                if not sample.hold_all(i, part, blocks):
+                    return  # the part ended before the grids were set: their setter folds it
+            except BaseException:
+                sample.abort()
+                raise
+            for block in sample.take(i):
                 part.fold(block)
-            for block in started.pop(i, None) or stream(i):
+            for block in blocks:
                 part.fold(block)
             part.release()
             merged.put(i, part)
         return run
 
+    def fold_parked(i: int, part: PartSums, held: list) -> None:
+        for block in held:
+            part.fold(block)
+        part.release()
+        merged.put(i, part)
+
+    sample.on_parked = fold_parked
     with shared_labels():  # cluster keys of parts with one label dictionary: hashed once
         run_tasks([task(i) for i in range(len(parts))], w)
     return merged.result()
