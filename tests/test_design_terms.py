@@ -235,6 +235,29 @@ def test_absorbed_key_equals_explicit_dummies():
     np.testing.assert_allclose(pred, res.fittedvalues, rtol=1e-9)
 
 
+def test_an_integer_key_and_categorical_equal_their_labels():
+    """An integer firm code absorbed, with the integer year as a categorical, gives the fit of the
+    same columns as strings (statsmodels' Grunfeld panel); the level names are the codes."""
+    df, table = _grunfeld()
+    firms = sorted(set(df.firm))
+    code = np.array([100 + firms.index(f) for f in df.firm], dtype=np.int64)
+    ints = table.set_column(table.schema.get_field_index("firm"), "firm", pa.array(code))
+    strings = ints.set_column(ints.schema.get_field_index("firm"), "firm", pa.array(code.astype(str)))
+    strings = strings.set_column(strings.schema.get_field_index("year"), "year",
+                                 pa.array(df.year.to_numpy().astype(int).astype(str)))
+    a = tallfit.fit(ints, "invest", ["value", "capital"], categorical=["year"], absorb="firm", batch_rows=13)
+    b = tallfit.fit(strings, "invest", ["value", "capital"], categorical=["year"], absorb="firm", batch_rows=13)
+    assert a.terms == b.terms and "year[1950]" in a.terms
+    np.testing.assert_allclose(a.inference.estimate, b.inference.estimate, rtol=1e-12)
+    np.testing.assert_allclose(a.inference.std_error, b.inference.std_error, rtol=1e-12)
+    assert a.inference.df_resid == b.inference.df_resid
+    ea, eb = a.coding["absorbed"]["effects"], b.coding["absorbed"]["effects"]
+    assert sorted(ea) == sorted(eb) == [str(100 + i) for i in range(len(firms))]
+    np.testing.assert_allclose([ea[k] for k in sorted(ea)], [eb[k] for k in sorted(eb)], rtol=1e-10)
+    np.testing.assert_allclose(tallfit.predict(a, ints)["prediction"].to_numpy(),
+                               tallfit.predict(b, strings)["prediction"].to_numpy(), rtol=1e-12)
+
+
 def test_absorb_with_a_level_seen_late_and_a_categorical():
     rng = np.random.default_rng(11)
     n = 900

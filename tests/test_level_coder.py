@@ -56,3 +56,51 @@ def test_parts_adopted_in_order_number_levels_as_one_stream():
     mapping = first.adopt(second)
     assert first.names == whole.names
     assert np.array_equal(mapping, [whole.names.index(n) for n in second.names])
+
+
+def _as_strings(arr: pa.Array) -> pa.Array:
+    return arr.cast(pa.string())
+
+
+INT_BATCHES = [
+    pa.array([7, -3, 7, 0], type=pa.int64()),
+    pa.array([None, 12, -3, None], type=pa.int32()),  # null rows
+    pa.array([5, 0, 2**40, 12], type=pa.int64()),
+]
+
+
+def test_integer_levels_number_as_their_strings_do():
+    """An integer column takes the integer hash table; its codes and level names must equal those
+    of the same values given as strings (the general path), nulls -2, negatives and big values
+    included."""
+    ints, strings = LevelCoder("host_id"), LevelCoder("host_id")
+    for arr in INT_BATCHES:
+        a = ints.codes(arr, "rows")
+        b = strings.codes(_as_strings(arr), "rows")
+        assert a.tolist() == b.tolist()
+    assert ints._ints is not None and strings._ints is None  # the integer path was taken
+    assert ints.names == strings.names == [f"host_id[{v}]" for v in ("7", "-3", "0", "12", "5", str(2**40))]
+    assert ints.n_columns == 6
+
+
+def test_integer_parts_adopted_in_order_number_levels_as_one_stream():
+    whole, first, second = LevelCoder("host_id"), LevelCoder("host_id"), LevelCoder("host_id")
+    for arr in INT_BATCHES:
+        whole.codes(arr, "rows")
+    first.codes(INT_BATCHES[0], "rows")
+    for arr in INT_BATCHES[1:]:
+        second.codes(arr, "rows")
+    mapping = first.adopt(second)
+    assert first.names == whole.names
+    assert np.array_equal(mapping, [whole.names.index(n) for n in second.names])
+    empty = LevelCoder("host_id")  # a coder that saw no rows yet takes the other's numbering
+    assert empty.adopt(whole).tolist() == list(range(whole.n_columns)) and empty.names == whole.names
+
+
+def test_fixed_coder_maps_integer_values_through_their_strings():
+    """A fixed coder (prediction, later passes) knows levels by name: integer rows find theirs, an
+    unseen value follows the policy."""
+    fixed = LevelCoder("host_id", fixed={"7": 0, "-3": -1, "12": 1}, n_columns=2, unseen="reference")
+    codes = fixed.codes(pa.array([12, 7, None, -3, 99], type=pa.int64()), "rows")
+    assert codes.tolist() == [1, 0, -2, -1, -1]
+    assert fixed.unseen_rows == 1 and fixed.unseen_levels == {"99": 1}

@@ -202,6 +202,7 @@ class LevelCoder:
         self._value_set: pa.Array | None = None
         self._value_cols: np.ndarray | None = None
         self._table: StringTable | None = None
+        self._ints: IntTable | None = None  # discovery of an integer column's levels
         self._last: tuple[pa.Array, np.ndarray] | None = None  # a batch dictionary and its columns
 
     @property
@@ -212,6 +213,10 @@ class LevelCoder:
         if table is not None and len(self._index) < table.n:
             for level in table.labels(len(self._index)).to_pylist():
                 self._index[level] = len(self._index)
+        ints = self._ints
+        if ints is not None and len(self._index) < ints.n:
+            for key in ints.keys[len(self._index): ints.n].tolist():
+                self._index[str(key)] = len(self._index)  # as Arrow casts an integer to a string
         return self._index
 
     @property
@@ -223,13 +228,21 @@ class LevelCoder:
         """Column index per row; -1 for the reference level (all zeros), -2 for a null."""
         if self.discover:
             fast = self._discovered_codes(arr)
+            if fast is None:
+                fast = self._discovered_int_codes(arr)
             if fast is not None:
                 return fast
-        strings = level_strings(arr)
-        enc = pc.dictionary_encode(strings)
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if pa.types.is_dictionary(arr.type):
+            enc = pc.dictionary_encode(level_strings(arr))
+            levels = enc.dictionary
+        else:  # the distinct values first, then only those as strings (10^7 casts cost seconds)
+            enc = pc.dictionary_encode(arr)
+            levels = level_strings(enc.dictionary)
         if isinstance(enc, pa.ChunkedArray):
             enc = enc.combine_chunks()
-        local = np.append(self._known_columns(enc.dictionary, label), -2)  # nulls index the last slot
+        local = np.append(self._known_columns(levels, label), -2)  # nulls index the last slot
         idx = enc.indices.to_numpy(zero_copy_only=False)
         idx = np.where(enc.indices.is_null().to_numpy(zero_copy_only=False), len(enc.dictionary), idx)
         codes = local[idx.astype(np.int64)]
@@ -267,6 +280,29 @@ class LevelCoder:
             indices = indices.fill_null(len(dictionary))
         return cols[indices.to_numpy(zero_copy_only=False)]
 
+    def _discovered_int_codes(self, arr) -> np.ndarray | None:
+        """Discovery mode for an integer column: levels numbered in order of first appearance by
+        a numba hash table of the values (no string per row); the level names are the values as
+        strings, as on the general path. None for other column types."""
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
+        if not pa.types.is_integer(arr.type) or pa.types.is_uint64(arr.type):
+            return None  # uint64 beyond 2^63 would not fit the table's int64 keys
+        if self._ints is None:
+            if self._index or self._table is not None:  # levels found another way first
+                return None
+            self._ints = IntTable()
+        values = arr.fill_null(0) if arr.null_count else arr
+        values = values.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+        if arr.null_count:
+            valid = arr.is_valid().to_numpy(zero_copy_only=False)
+            codes = np.full(len(arr), -2, dtype=np.int64)
+            codes[valid] = self._ints.ids(values[valid])
+        else:
+            codes = self._ints.ids(values)
+        self.n_columns = self._ints.n
+        return codes
+
     def adopt(self, other: "LevelCoder") -> np.ndarray:
         """Take in the levels of another discovering coder of the same column (a part of the data
         read apart): returns the code here of each of its codes, levels new here appended in its
@@ -274,6 +310,14 @@ class LevelCoder:
         n = other.n_columns
         if n == 0:
             return np.zeros(0, dtype=np.int64)
+        if other._ints is not None and (self._ints is not None or (self._table is None and not self._index)):
+            if self._ints is None:
+                self._ints = IntTable()
+            ids = self._ints.ids(other._ints.keys[: other._ints.n])
+            self.n_columns = self._ints.n
+            return ids
+        if self._ints is not None:  # integer levels here, found another way there: one by one
+            return np.array([self._column_of(level, "") for level in sorted(other.index, key=other.index.__getitem__)], dtype=np.int64)
         if self._table is None and not self._index:
             self._table = StringTable()
         if self._table is not None and other._table is not None:
@@ -310,6 +354,10 @@ class LevelCoder:
         if col is not None:
             return col
         if self.discover:
+            if self._ints is not None:  # one numbering: the integer table's
+                col = int(self._ints.ids(np.array([int(level)], dtype=np.int64))[0])
+                self.n_columns = self._ints.n
+                return col
             if self._table is not None:  # one numbering: the hash table's, as on the fast path
                 col = int(self._table.ids(pa.array([level], type=pa.string()))[0])
                 self.n_columns = self._table.n
