@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 import tallfit
@@ -258,7 +259,7 @@ def test_an_integer_key_and_categorical_equal_their_labels():
                                tallfit.predict(b, strings)["prediction"].to_numpy(), rtol=1e-12)
 
 
-def test_absorb_with_a_level_seen_late_and_a_categorical():
+def test_absorb_with_a_level_seen_late_and_a_categorical(tmp_path):
     rng = np.random.default_rng(11)
     n = 900
     host = np.concatenate([rng.choice([f"h{i:03d}" for i in range(40)], n - 30), ["h999"] * 30])
@@ -273,14 +274,26 @@ def test_absorb_with_a_level_seen_late_and_a_categorical():
     res = sm.OLS(y, X).fit()
     np.testing.assert_allclose(model.inference.estimate, res.params[:2], rtol=1e-9)
     np.testing.assert_allclose(model.inference.std_error, res.bse[:2], rtol=1e-9)
-    with pytest.raises(DesignError, match="never saw"):
+    with pytest.raises(DesignError, match="'host' has level 'h-new'.*never saw"):
         tallfit.predict(model, pa.table({"x": [0.0], "host": ["h-new"], "cls": ["compute-a"]}))
+    # rows find their host's effect whatever the key's form (plain strings, an Arrow dictionary)
+    fitted = res.fittedvalues
+    for keys in (pa.array(host), pa.array(host).dictionary_encode()):
+        pred = tallfit.predict(model, table.set_column(1, "host", keys), batch_rows=128)["prediction"].to_numpy()
+        np.testing.assert_allclose(pred, fitted, rtol=1e-9)
+    # unseen hosts (and a null one) take the mean effect when allowed, and are counted
+    new = pa.table({"x": [0.0, 0.0, 0.0, 0.0], "host": ["h-new", host[0], None, "h-new"],
+                    "cls": ["compute-a"] * 4})
+    report = tallfit.predict(model, new, unseen="reference", out=tmp_path / "scored.parquet")
+    assert report.rows_unseen_levels == 3
+    pred = pq.read_table(tmp_path / "scored.parquet")["prediction"].to_numpy()
+    mean = model.coding["absorbed"]["mean_effect"]
+    effect = model.coding["absorbed"]["effects"][host[0]]
+    np.testing.assert_allclose(pred - pred[0], [0.0, effect - mean, 0.0, 0.0], atol=1e-9)
 
 
 def test_where_skips_row_groups_and_partitions_without_changing_the_answer(tmp_path):
     """Pushdown is an optimisation only: the fit equals the one on pre-filtered rows."""
-    import pyarrow.parquet as pq
-
     from tallfit.inputs import as_source
 
     rng = np.random.default_rng(9)
@@ -324,3 +337,30 @@ def test_levels_merged_by_name_equal_a_direct_fit():
     assert pred[0].as_py() == pytest.approx(pred[1].as_py())
     with pytest.raises(DesignError, match="no used rows"):
         tallfit.fit(table, "y", ["x"], categorical=["region"], merge_levels={"region": {"n": ["south-9"]}})
+
+
+def test_scoring_by_level_lookup_equals_dense_indicators():
+    """Without intervals the scorer adds β of each row's level by lookup; with them it builds the
+    dense indicator columns. Both must give the same predictions: rare levels merged into "other",
+    an unseen level scored as "other", a null level and a missing feature (null predictions), two
+    categoricals. Data invented (property test)."""
+    rng = np.random.default_rng(21)
+    n = 2_000
+    rack = rng.choice([f"r{i:02d}" for i in range(12)], n, p=[0.2, 0.2, 0.15, 0.15, 0.1, 0.1] + [0.1 / 6] * 6)
+    cls = rng.choice(["compute", "storage", "edge"], n)
+    x = rng.normal(size=n)
+    y = 1.0 + 2.0 * x + (cls == "edge") * 0.7 + np.char.count(rack.astype(str), "3") * 0.4 + rng.normal(size=n)
+    model = tallfit.fit(pa.table({"x": x, "rack": rack, "cls": cls, "y": y}), "y", ["x"],
+                        categorical=["rack", "cls"], min_level_count=60, batch_rows=300)
+    assert model.coding["columns"]["rack"].get("other_column") is not None
+    new = pa.table({"x": pa.array([0.3, None, -1.0, 0.5, 2.0] * 40),
+                    "rack": pa.array(["r00", "r07", None, "r99", "r11"] * 40),
+                    "cls": pa.array(["edge", "compute", "storage", "storage", "edge"] * 40)})
+    lookup = tallfit.predict(model, new, unseen="other", batch_rows=64)
+    dense = tallfit.predict(model, new, unseen="other", intervals=True, batch_rows=64)
+    a, b = lookup["prediction"].to_numpy(zero_copy_only=False), dense["prediction"].to_numpy(zero_copy_only=False)
+    np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
+    assert np.isnan(a[1]) and np.isnan(a[2])
+    np.testing.assert_allclose(a[~np.isnan(a)], b[~np.isnan(b)], rtol=1e-13, atol=1e-12)
+    c = model.coef
+    assert a[3] == pytest.approx(c["(intercept)"] + 0.5 * c["x"] + c["rack[(other)]"] + c.get("cls[storage]", 0.0))

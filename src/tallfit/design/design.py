@@ -22,9 +22,12 @@ class Design:
     """Builds DesignBlocks for one pass over the data."""
 
     def __init__(self, spec: ModelSpec, coding: dict | None = None, unseen: str = "error",
-                 predicting: bool = False, structured: bool = False) -> None:
+                 predicting: bool = False, structured: bool = False, level_codes: bool = False) -> None:
         self.spec = spec
         self.predicting = predicting
+        # level_codes (prediction with a fixed coding): categorical columns come as each row's
+        # column code (``features``) instead of dense indicator columns, for a lookup of β
+        self.level_codes = level_codes and predicting and coding is not None
         # structured: blocks hold only [features | y] (no intercept, no indicators, rows not scaled
         # by √w) plus each row's level codes and weight, for the accumulators that exploit the
         # one-hot structure (accumulate/onehot.py, accumulate/absorb.py)
@@ -85,18 +88,25 @@ class Design:
                 block.extra[col] = arr if mask is None else arr.filter(mask)
         return block
 
-    def features(self, batch: pa.RecordBatch, label: str) -> tuple[np.ndarray, np.ndarray]:
-        """Prediction mode: X over every row (zeros where unusable) and the mask of usable rows."""
+    def features(self, batch: pa.RecordBatch, label: str) -> tuple[np.ndarray, np.ndarray, list[np.ndarray]]:
+        """Prediction mode: X over every row (zeros where unusable), the mask of usable rows and,
+        with ``level_codes``, each categorical's column codes per row (X then holds the columns
+        before the indicators; codes < 0: no indicator column)."""
         if self.plain:
             from tallfit.design.numeric import feature_block
 
-            return feature_block(batch, self.spec)
+            return (*feature_block(batch, self.spec), [])
         block, _ = self._general(batch, label)
         m = block.n_read
-        ok = np.ones(m, dtype=bool) if block.keep is None else block.keep
-        X = np.zeros((m, block.A.shape[1] - 1), order="F")
-        X[ok] = block.A[:, :-1]
-        return X, ok
+        q = block.A.shape[1] - 1
+        codes = block.codes if self.level_codes else []
+        if block.keep is None or block.A.shape[0] == m:
+            return block.A[:, :q], np.ones(m, dtype=bool), codes  # every row usable: the block itself
+        ok = block.keep
+        X = np.zeros((m, q), order="F")
+        for j in range(q):  # column by column: a masked row assignment of the whole block is ≈ 10× slower
+            X[ok, j] = block.A[:, j]
+        return X, ok, codes
 
     def _general(self, batch: pa.RecordBatch, label: str):
         spec = self.spec
@@ -168,7 +178,7 @@ class Design:
                 dropped["(zero weight)"] = dropped.get("(zero weight)", 0) + int((zero & keep).sum())
                 keep &= ~zero
         for coder, codes in zip(self.coders, codes_all):
-            if self.structured:
+            if self.structured or self.level_codes:
                 continue
             blocks.append(coder.indicators(codes[keep] if not keep.all() else codes))
             if coder.n_columns > WIDE_LEVELS and coder.column not in self.wide_warned:
@@ -193,7 +203,7 @@ class Design:
         block = DesignBlock(A=A, n_read=n_read, dropped_by_column=dropped, keep=None if rows is None else keep)
         block.names = list(self.names)
         block.filled = filled
-        if A.shape[0]:
+        if A.shape[0] and not self.predicting:  # the column ranges serve the fit and its passes
             block.col_min = A.min(axis=0)
             block.col_max = A.max(axis=0)
         if w is not None:
@@ -203,6 +213,8 @@ class Design:
             block.row_weights = wk
             if not self.structured:
                 np.multiply(A, np.sqrt(wk)[:, None], out=A)
+        if self.level_codes:
+            block.codes = codes_all  # every row's: features() spreads the used rows back
         if self.structured:
             block.codes = [codes if rows is None else codes[rows] for codes in codes_all]
             block.level_sizes = [coder.n_columns for coder in self.coders]  # levels known so far

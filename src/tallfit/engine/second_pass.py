@@ -20,7 +20,6 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable, Sequence
-from typing import Any
 
 from tallfit.design.categorical import shared_labels
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
