@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 
 import tallfit
@@ -55,11 +56,24 @@ def test_groups_equal_separate_fits(fleet, tmp_path):
     assert "per region" in back.summary()
 
 
-def test_group_without_model_gets_null_prediction(fleet):
+def test_group_without_model_gets_null_prediction(fleet, tmp_path):
     g = tallfit.fit(fleet, "power", ["cpu"], by=["region"])
     new = pa.table({"cpu": [0.5, 0.5], "region": ["north-1", "south-9"]})
     pred = tallfit.predict(g, new)["prediction"].to_pylist()
     assert pred[0] is not None and pred[1] is None
+    # interleaved groups, a null key and an unseen one: each row scored by its own group's model
+    cpu = [0.1, 0.9, 0.4, 0.7, 0.2, 0.6]
+    region = ["west-2", "north-1", None, "west-2", "south-9", "north-1"]
+    report = tallfit.predict(g, pa.table({"cpu": cpu, "region": region}), batch_rows=4,
+                             out=tmp_path / "p.parquet")
+    assert report.rows == 6 and report.rows_without_group_model == 2
+    pred = pq.read_table(report.out)["prediction"].to_pylist()
+    for x, r, p in zip(cpu, region, pred):
+        if r in (None, "south-9"):
+            assert p is None
+        else:
+            b = g.groups[r].inference.estimate
+            assert p == pytest.approx(b[0] + b[1] * x, rel=1e-12)
 
 
 def test_too_many_groups_is_a_clear_error(fleet):

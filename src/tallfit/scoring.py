@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 from scipy.linalg import solve_triangular
 
 from tallfit.atomic import atomic_path, check_writable
@@ -201,20 +202,25 @@ class _GroupScorer:
     def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
         from tallfit.grouped import group_keys
 
-        keys = group_keys([batch.column(c) for c in self.by]).to_pylist()
+        keys = pc.dictionary_encode(group_keys([batch.column(c) for c in self.by]))
+        if isinstance(keys, pa.ChunkedArray):
+            keys = keys.combine_chunks()
         m = batch.num_rows
         names = ["prediction"] + (["ci_low", "ci_high", "pi_low", "pi_high"] if self.intervals else [])
         out = {n: np.full(m, np.nan) for n in names}
-        positions: dict[str, list[int]] = {}
-        for i, k in enumerate(keys):
-            positions.setdefault(k, []).append(i)
-        for key, rows in positions.items():
+        # rows of each distinct key (a null key: its own run, with no model), in row order
+        groups = keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)
+        order = np.argsort(groups, kind="stable")
+        ends = np.cumsum(np.bincount(groups, minlength=len(keys.dictionary) + 1))
+        for g, key in enumerate(keys.dictionary.to_pylist() + [None]):
+            idx = order[(ends[g - 1] if g else 0): ends[g]]
+            if idx.size == 0:
+                continue
             scorer = self.scorers.get(key)
             if scorer is None:
-                report.rows += len(rows)
-                report.rows_without_group_model += len(rows)
+                report.rows += idx.size
+                report.rows_without_group_model += idx.size
                 continue
-            idx = np.asarray(rows)
             part = scorer.score(batch.take(pa.array(idx)), report, label)
             for n in names:
                 out[n][idx] = part[n]
