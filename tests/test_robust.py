@@ -194,3 +194,49 @@ def test_summary_caution_names_what_the_robust_errors_allow(grunfeld):
     assert "HC1 allows unequal noise but" in hc and "need a second pass" not in hc
     cl = tallfit.fit(table, target="invest", features=["value", "capital"], cluster="firm").summary()
     assert "dependent within a cluster" in cl
+
+
+def test_categorical_model_robust_errors_match_statsmodels_dummies(grunfeld, monkeypatch):
+    """A model with the year as a categorical (19 indicators, reference 1954, the most frequent's
+    tie-break) and a second categorical (firm, clustered on too): the pass looks each row's level
+    rows of the tile map up instead of multiplying indicator columns. Every HC kind and the
+    firm-clustered errors equal statsmodels OLS on explicit dummies; the diagnostics equal those
+    of the dense-indicator pass."""
+    import tallfit.engine.pass_sums as ps
+
+    table, _, y, firm, _ = grunfeld
+    model = tallfit.fit(table, target="invest", features=["value", "capital"], categorical=["year", "firm"],
+                        batch_rows=23)
+    sp = second_pass(model, table, cluster=["firm"], robust="all", batch_rows=23)
+    r = robust_for_model(model, sp.sandwich, sp.clusters, "all")
+    d = sm.datasets.grunfeld.load_pandas().data
+    cols = {"(intercept)": np.ones(len(d)), "value": d.value.to_numpy(float), "capital": d.capital.to_numpy(float)}
+    for term in model.terms[3:]:
+        col, level = term[:-1].split("[", 1)
+        vals = d.year.astype(int).astype(str) if col == "year" else d.firm.astype(str)
+        cols[term] = (vals.to_numpy() == level).astype(float)
+    X = np.column_stack([cols[t] for t in model.terms])
+    assert X.shape[1] == 3 + 19 + 10
+    for kind in ("HC0", "HC1", "HC2", "HC3"):
+        _close(r["estimators"][kind]["covariance"], sm.OLS(y, X).fit(cov_type=kind).cov_params())
+    ref = sm.OLS(y, X).fit(cov_type="cluster", cov_kwds={"groups": firm}, use_t=True)
+    cl = robust_for_model(model, sp.sandwich, sp.clusters, None)["estimators"]["cluster:firm"]
+    _close(cl["covariance"], ref.cov_params(), rtol=1e-7)
+    monkeypatch.setattr(ps.PassPlan, "__init__", _dense_plan(ps.PassPlan.__init__))
+    dense = second_pass(model, table, cluster=["firm"], robust="all", batch_rows=23)
+    assert dense.n_used == sp.n_used == len(d)
+    np.testing.assert_allclose(dense.sandwich.gram, sp.sandwich.gram, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(dense.feature_bins.sums, sp.feature_bins.sums, rtol=1e-10, atol=1e-9)
+    np.testing.assert_allclose(dense.fitted_bins.sums, sp.fitted_bins.sums, rtol=1e-10, atol=1e-9)
+    np.testing.assert_array_equal(dense.heat, sp.heat)
+    np.testing.assert_allclose(dense.top_leverage.values, sp.top_leverage.values, rtol=1e-10)
+
+
+def _dense_plan(init):
+    """PassPlan.__init__ with the level lookup turned off (blocks with dense indicator columns)."""
+    def dense(self, model, *args, **kwargs):
+        init(self, model, *args, **kwargs)
+        if self.level_codes:
+            self.level_codes, self.level_maps, self.dense = False, [], len(model.accumulator.names) - 1
+            self._maps.clear()
+    return dense

@@ -25,9 +25,10 @@ class Design:
                  predicting: bool = False, structured: bool = False, level_codes: bool = False) -> None:
         self.spec = spec
         self.predicting = predicting
-        # level_codes (prediction with a fixed coding): categorical columns come as each row's
-        # column code (``features``) instead of dense indicator columns, for a lookup of β
-        self.level_codes = level_codes and predicting and coding is not None
+        # level_codes (a fixed coding: prediction, the second pass): blocks hold no indicator
+        # columns; each categorical comes as the used rows' column codes (block.codes; < 0: no
+        # column), for the consumer to look up its rows of β or of a map
+        self.level_codes = level_codes and coding is not None
         # structured: blocks hold only [features | y] (no intercept, no indicators, rows not scaled
         # by √w) plus each row's level codes and weight, for the accumulators that exploit the
         # one-hot structure (accumulate/onehot.py, accumulate/absorb.py)
@@ -106,7 +107,12 @@ class Design:
         X = np.zeros((m, q), order="F")
         for j in range(q):  # column by column: a masked row assignment of the whole block is ≈ 10× slower
             X[ok, j] = block.A[:, j]
-        return X, ok, codes
+        spread = []
+        for c in codes:  # back to every row (unusable ones: no column)
+            full = np.full(m, -1, dtype=np.int64)
+            full[ok] = c
+            spread.append(full)
+        return X, ok, spread
 
     def _general(self, batch: pa.RecordBatch, label: str):
         spec = self.spec
@@ -213,9 +219,7 @@ class Design:
             block.row_weights = wk
             if not self.structured:
                 np.multiply(A, np.sqrt(wk)[:, None], out=A)
-        if self.level_codes:
-            block.codes = codes_all  # every row's: features() spreads the used rows back
-        if self.structured:
+        if self.level_codes or self.structured:
             block.codes = [codes if rows is None else codes[rows] for codes in codes_all]
             block.level_sizes = [coder.n_columns for coder in self.coders]  # levels known so far
         if self.coders and self.fixed_names is None:

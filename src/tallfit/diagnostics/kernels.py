@@ -11,6 +11,7 @@
 * ``square_moments``: mean and centred sum of squares of e² (one block, two sweeps).
 * ``grid_index``: the grid cell of each value of one column (fitted values, residuals).
 * ``scatter_rows``: S[code[i], :] += W[i, :] (cluster score sums).
+* ``gather_add``: W[i, :] += T[code[i], :] (the indicator columns' rows of the tile map).
 * ``grid_counts``: a 2-D histogram of two cell indices (fitted value × residual).
 * ``residual_moments``: Σ|e|, Σe², Σe³, Σe⁴, min, max and a histogram on a fixed grid.
 
@@ -85,6 +86,18 @@ def scatter_rows(codes, W, S):
     for j in range(p):
         for i in range(m):
             S[codes[i], j] += W[i, j]
+
+
+@numba.njit(cache=True, nogil=True)
+def gather_add(codes, r0, T, W):  # pragma: no cover - compiled
+    """W[i, :] += T[codes[r0 + i] + 2, :] for W's rows (rows 0, 1 of T: the codes −2, −1)."""
+    m, q = W.shape
+    c = codes[r0 : r0 + m]
+    for j in range(q):
+        w = W[:, j]
+        t = T[:, j]
+        for i in range(m):
+            w[i] += t[c[i] + 2]
 
 
 @numba.njit(cache=True, nogil=True)

@@ -47,6 +47,7 @@ def design_blocks(
     design: Design | None = None,
     pool=None,
     prefetch: int = 2,
+    level_codes: bool = False,
 ) -> Iterator[DesignBlock]:
     """Design blocks for every batch of the source, decoded one thread ahead of the caller.
 
@@ -58,10 +59,11 @@ def design_blocks(
     ``pool`` (engine.parallel.BufferPool) lends reusable matrices to plain numeric designs; the
     consumer then hands each ``block.A`` back with ``pool.give`` once it is done with it.
     ``prefetch``: blocks decoded ahead in the reader thread (0: no reader thread; the caller's
-    thread decodes, for callers that run one such loop per core).
+    thread decodes, for callers that run one such loop per core). ``level_codes``: with a
+    ``coding``, categoricals as per-row column codes instead of indicator columns (Design).
     """
     where = source_label(source)
-    design = design or Design(spec, coding=coding, unseen=unseen)
+    design = design or Design(spec, coding=coding, unseen=unseen, level_codes=level_codes)
     check_design_columns(spec, source.schema, where)
     for col in extra_columns:
         if col not in source.schema.names:

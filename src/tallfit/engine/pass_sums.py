@@ -23,7 +23,7 @@ from scipy.linalg.lapack import dtrtri
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
-from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, grid_counts, grid_index, tile_scores
+from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, gather_add, grid_counts, grid_index, tile_scores
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
 from tallfit.engine.local import span_label
@@ -102,6 +102,25 @@ class PassPlan:
         self.R11_inv = _upper_inverse(self.R11)
         self.robust = robust
         self._maps: dict[int, np.ndarray] = {}
+        # categoricals (unweighted): blocks come without indicator columns (level codes instead);
+        # [Z | e] is then the product of the dense columns with their rows of the tile map plus,
+        # per categorical, the map's row of each row's level (one gather instead of a product
+        # over mostly-zero columns: ≈ 5× fewer operations with 58 indicators beside 7 columns)
+        coding = model.coding or {}
+        self.level_codes = bool(spec.categorical) and not getattr(spec, "weights", None) and "columns" in coding
+        self.level_maps: list[np.ndarray] = []
+        self.dense = len(names)
+        if self.level_codes:
+            widths = [len(coding["columns"][c]["columns"]) for c in spec.categorical]
+            self.dense = len(names) - sum(widths)
+            full = tile_map(self.R11_inv, self.cols, self.beta, len(names) + 1)
+            self._maps[self.dense + 1] = np.asfortranarray(np.vstack([full[: self.dense], full[-1:]]))
+            at = self.dense
+            for w in widths:
+                T = np.zeros((w + 2, self.p + 1), order="F")  # codes −2 (null), −1 (reference): 0
+                T[2:] = full[at: at + w]
+                self.level_maps.append(T)
+                at += w
         self.features = [f for f in spec.features if f in model.terms]
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
         self.intercept = bool(spec.intercept and names[0] in model.terms)
@@ -116,6 +135,16 @@ class PassPlan:
         self.feature_grid: Grid | None = None
         self.fitted_grid: Grid | None = None
         self.heat_axes: dict[str, Any] = {}
+
+    def fitted_values(self, block, a: np.ndarray) -> np.ndarray:
+        """Xβ of a block's design rows ``a`` (and, with level codes, of its rows' levels)."""
+        dense = self.cols < a.shape[1] - 1
+        beta = np.zeros(a.shape[1])
+        beta[self.cols[dense]] = self.beta[dense]
+        out = a @ beta
+        for T, codes in zip(self.level_maps, block.codes if self.level_codes else []):
+            out -= T[codes + 2, self.p]  # the map's last column holds −β
+        return out
 
     def tile_map(self, width: int) -> np.ndarray:
         """``tile_map`` for design rows of ``width`` columns (kept per width)."""
@@ -144,9 +173,7 @@ class PassPlan:
                 rows = slice(r, r + a.shape[0])
                 for j, c in enumerate(self.fcols):
                     F[rows, j] = a[:, c]
-                beta = np.zeros(a.shape[1])
-                beta[self.cols] = self.beta
-                np.matmul(a, beta, out=fit[rows, 0])
+                fit[rows, 0] = self.fitted_values(b, a)
                 r += a.shape[0]
         self.feature_grid = Grid.from_sample(F, whole, overwrite=True)
         self.fitted_grid = fgrid = Grid.from_sample(fit, whole, overwrite=True)
@@ -236,6 +263,7 @@ class PartSums:
         M = plan.tile_map(A.shape[1])
         half = p // 2
         split = int(plan.cols[half - 1]) + 1 if half else 0
+        lookup = plan.level_codes
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
         in_place = self._in_place
@@ -244,8 +272,13 @@ class PartSums:
             ZE, V = self._tile(b - a)
             # [Z | e] by BLAS without the GIL, in two products: Z's first p/2 columns need only the
             # design columns up to cols[p/2 − 1] (R11⁻¹ is upper triangular): ¾ of one dense product
-            np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
-            np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
+            if lookup:  # the dense columns' product, then each row's level rows of the map
+                np.matmul(A[a:b], M, out=ZE)
+                for T, c in zip(plan.level_maps, block.codes):
+                    gather_add(c, a, T, ZE)
+            else:
+                np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
+                np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
             tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place)
             W = ZE[:, :p]  # the scores (or the sandwich rows when in_place)
             sandwich.add_rows(W if in_place else V)

@@ -154,7 +154,8 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
     def stream(i: int):
         sub, file_index = parts[i]
         return iter(design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
-                                  extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w)))
+                                  extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w),
+                                  level_codes=plan.level_codes))
 
     merged = OrderedMerge(lambda a, b: a.absorb(b))
     sample = _Sample(plan, len(parts))
@@ -230,6 +231,7 @@ def second_pass(
     parts = source_parts(source)
     if parts is not None:
         return _scan_parts(plan, parts, model.spec, model.coding, extra, batch_rows, progress, workers).finish()
-    blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding)
+    blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding,
+                           level_codes=plan.level_codes)
     with single_blas_thread():  # OpenBLAS threads beside the reader were 4-150x slower here
         return _scan(plan, source, blocks).finish()

@@ -280,7 +280,7 @@ def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], sel
     """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors."""
     from tallfit.solve.exact import reduce_factor
 
-    names = model.spec.term_names
+    names = model.accumulator.names[:-1]  # the fitted design's columns, categorical indicators included
     cols = [names.index(t) for t in model.terms]
     p = len(cols)
     R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
