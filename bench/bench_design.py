@@ -1,6 +1,7 @@
 """Cost of categorical terms and an absorbed key, against the numeric-only fit of the same file.
 
-Writes fleet telemetry (synthetic_gen, 100,000 hosts) with two extra label columns that vary
+Writes fleet telemetry (synthetic_gen, 100,000 hosts; host_id as string labels in a Parquet
+dictionary, or with --key-type int as int32 host numbers) with two extra label columns that vary
 within a host, ``zone`` (8 levels) and ``pod`` (50 levels), as one zstd Parquet file. Then,
 each in its own process (so peak RSS is that run's own), median of --repeats runs:
 
@@ -33,9 +34,10 @@ MODES = ["scan", "scan_labels", "numeric", "categorical", "absorb", "both"]
 LABELS = ["zone", "pod", "host_id"]
 
 
-def write_data(path: Path, rows: int, hosts: int) -> None:
+def write_data(path: Path, rows: int, hosts: int, key_type: str = "dict") -> None:
     import numpy as np
     import pyarrow as pa
+    import pyarrow.compute as pc
     import pyarrow.parquet as pq
 
     import synthetic_gen
@@ -52,6 +54,12 @@ def write_data(path: Path, rows: int, hosts: int) -> None:
                 # stored as Arrow dictionaries, like host_id (and like any categorical column
                 # written from a data frame), so they read back without materialising strings
                 t = t.append_column(name, pa.DictionaryArray.from_arrays(codes, pa.array(levels)))
+            if key_type == "int":  # host_id as the host's number ("h012345" -> 12345), int32
+                h = t.column("host_id").combine_chunks()
+                if pa.types.is_dictionary(h.type):
+                    h = h.dictionary_decode()
+                number = pc.cast(pc.utf8_slice_codeunits(h, 1), pa.int32())
+                t = t.set_column(t.schema.get_field_index("host_id"), "host_id", number)
             if writer is None:
                 writer = pq.ParquetWriter(tmp, t.schema, compression="zstd")
             writer.write_table(t, row_group_size=256_000)
@@ -79,7 +87,8 @@ def run_one(mode: str, path: str) -> dict:
                 for j, c in enumerate(cols):
                     buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
                 for c in labels:
-                    rb.column(c).indices.to_numpy(zero_copy_only=False)
+                    col = rb.column(c)
+                    (col.indices if hasattr(col, "indices") else col).to_numpy(zero_copy_only=False)
     else:
         kwargs = {}
         if mode in ("categorical", "both"):
@@ -113,6 +122,8 @@ def main() -> int:
     ap.add_argument("--hosts", type=int, default=100_000)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--dir", default=str(OUT))
+    ap.add_argument("--key-type", choices=["dict", "int"], default="dict",
+                    help="host_id as string labels in a Parquet dictionary (default) or as int32 host numbers")
     ap.add_argument("--run", nargs=2, metavar=("MODE", "PATH"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.run:
@@ -120,15 +131,16 @@ def main() -> int:
         return 0
     folder = Path(args.dir)
     folder.mkdir(parents=True, exist_ok=True)
-    path = folder / f"design-{args.rows}-{args.hosts}-dict.parquet"
+    path = folder / f"design-{args.rows}-{args.hosts}-{args.key_type}.parquet"
     if not path.exists():
         t0 = time.perf_counter()
-        write_data(path, args.rows, args.hosts)
+        write_data(path, args.rows, args.hosts, args.key_type)
         print(f"wrote {path.name} ({path.stat().st_size / 1e6:.0f} MB) in {time.perf_counter() - t0:.0f} s")
     results = {m: median_runs("bench_design.py", ["--run", m, str(path)], args.repeats) for m in MODES}
     base = results["numeric"]["seconds"]
     scan = results["scan"]["seconds"]
-    print(f"\n{args.rows:,} rows, zone 8 levels, pod 50 levels, host_id {args.hosts:,} levels; "
+    print(f"\n{args.rows:,} rows, zone 8 levels, pod 50 levels, host_id {args.hosts:,} levels "
+          f"({'int32 numbers' if args.key_type == 'int' else 'string dictionary'}); "
           f"median of {args.repeats}")
     cpu_base = results["numeric"]["cpu_seconds"]
     print(f"{'run':12s} {'seconds':>8s} {'× numeric':>10s} {'× scan':>8s} {'CPU s':>7s} {'CPU × numeric':>14s} "
