@@ -340,10 +340,14 @@ def test_levels_merged_by_name_equal_a_direct_fit():
 
 
 def test_scoring_by_level_lookup_equals_dense_indicators():
-    """Without intervals the scorer adds β of each row's level by lookup; with them it builds the
-    dense indicator columns. Both must give the same predictions: rare levels merged into "other",
-    an unseen level scored as "other", a null level and a missing feature (null predictions), two
-    categoricals. Data invented (property test)."""
+    """The scorer adds β (and, for intervals, R11⁻¹'s rows) of each row's level by lookup instead
+    of building indicator columns. Predictions and 90 % intervals must equal the direct dense
+    computation, xᵀβ and t·√(xᵀ V x) (V the model's covariance; + s² for a new row), with x the
+    explicit 0/1 columns: rare levels merged into "other", an unseen level scored as "other", a
+    null level and a missing feature (null predictions), two categoricals. Data invented
+    (property test)."""
+    from scipy import stats
+
     rng = np.random.default_rng(21)
     n = 2_000
     rack = rng.choice([f"r{i:02d}" for i in range(12)], n, p=[0.2, 0.2, 0.15, 0.15, 0.1, 0.1] + [0.1 / 6] * 6)
@@ -352,15 +356,39 @@ def test_scoring_by_level_lookup_equals_dense_indicators():
     y = 1.0 + 2.0 * x + (cls == "edge") * 0.7 + np.char.count(rack.astype(str), "3") * 0.4 + rng.normal(size=n)
     model = tallfit.fit(pa.table({"x": x, "rack": rack, "cls": cls, "y": y}), "y", ["x"],
                         categorical=["rack", "cls"], min_level_count=60, batch_rows=300)
-    assert model.coding["columns"]["rack"].get("other_column") is not None
-    new = pa.table({"x": pa.array([0.3, None, -1.0, 0.5, 2.0] * 40),
-                    "rack": pa.array(["r00", "r07", None, "r99", "r11"] * 40),
-                    "cls": pa.array(["edge", "compute", "storage", "storage", "edge"] * 40)})
-    lookup = tallfit.predict(model, new, unseen="other", batch_rows=64)
-    dense = tallfit.predict(model, new, unseen="other", intervals=True, batch_rows=64)
-    a, b = lookup["prediction"].to_numpy(zero_copy_only=False), dense["prediction"].to_numpy(zero_copy_only=False)
-    np.testing.assert_array_equal(np.isnan(a), np.isnan(b))
-    assert np.isnan(a[1]) and np.isnan(a[2])
-    np.testing.assert_allclose(a[~np.isnan(a)], b[~np.isnan(b)], rtol=1e-13, atol=1e-12)
-    c = model.coef
-    assert a[3] == pytest.approx(c["(intercept)"] + 0.5 * c["x"] + c["rack[(other)]"] + c.get("cls[storage]", 0.0))
+    coding = model.coding["columns"]
+    assert coding["rack"].get("other_column") is not None
+    new_x = [0.3, None, -1.0, 0.5, 2.0] * 40
+    new_rack = ["r00", "r07", None, "r99", "r11"] * 40
+    new_cls = ["edge", "compute", "storage", "storage", "edge"] * 40
+    new = pa.table({"x": pa.array(new_x), "rack": pa.array(new_rack), "cls": pa.array(new_cls)})
+    got = tallfit.predict(model, new, unseen="other", intervals=True, level=0.9, batch_rows=64)
+    plain = tallfit.predict(model, new, unseen="other", batch_rows=64)["prediction"]
+    # the dense rows, built here from the model's coding
+    def column_of(col, level):
+        c = coding[col]
+        if level in c["column_of"]:
+            return c["column_of"][level]
+        return c["other_column"] if c.get("other_column") is not None else -1
+    rows = []
+    for xv, r, k in zip(new_x, new_rack, new_cls):
+        vals = {"(intercept)": 1.0, "x": xv if xv is not None else np.nan}
+        for col, level in (("rack", r), ("cls", k)):
+            j = column_of(col, level) if level is not None else -1
+            for i, name in enumerate(coding[col]["columns"]):
+                vals[f"{col}[{name}]"] = np.nan if level is None else float(i == j)
+        rows.append([vals[t] for t in model.terms])
+    X = np.array(rows)
+    inf = model.inference
+    pred = X @ inf.estimate
+    se = np.sqrt(np.einsum("ij,jk,ik->i", X, inf.cov, X))
+    q = stats.t.ppf(0.95, inf.df_resid)
+    a = got["prediction"].to_numpy(zero_copy_only=False)
+    ok = ~np.isnan(pred)
+    assert ok.sum() == 120 and np.array_equal(np.isnan(a), ~ok)
+    np.testing.assert_allclose(a[ok], pred[ok], rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(plain.to_numpy(zero_copy_only=False)[ok], pred[ok], rtol=1e-12, atol=1e-12)
+    for name, want in (("ci_low", pred - q * se), ("ci_high", pred + q * se),
+                       ("pi_low", pred - q * np.sqrt(inf.residual_std**2 + se**2)),
+                       ("pi_high", pred + q * np.sqrt(inf.residual_std**2 + se**2))):
+        np.testing.assert_allclose(got[name].to_numpy(zero_copy_only=False)[ok], want[ok], rtol=1e-10, err_msg=name)

@@ -19,7 +19,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-from scipy.linalg.lapack import dtrtri
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
@@ -28,9 +27,8 @@ from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
 from tallfit.engine.local import span_label
 from tallfit.engine.parallel import BufferPool
-from tallfit.errors import DesignError
 from tallfit.results import FitResult
-from tallfit.solve.exact import reduce_factor
+from tallfit.solve.exact import reduce_factor, upper_inverse
 from tallfit.solve.robust import ClusterSums, SandwichSums
 
 HEAT_CELLS = 64  # fitted × residual histogram: 64 × 64 cells over the fitted grid and ±4 s
@@ -56,17 +54,6 @@ class SecondPass:
     residuals: ResidualSketch | None = None
     top_residuals: TopRows | None = None
     top_leverage: TopRows | None = None
-
-
-def _upper_inverse(R: np.ndarray) -> np.ndarray:
-    """R⁻¹ of a nonsingular upper triangle, Fortran order."""
-    p = R.shape[0]
-    if p == 0:
-        return np.zeros((0, 0), order="F")
-    inv, info = dtrtri(R, lower=0)
-    if info != 0:  # a zero pivot: the model would not have kept an aliased term
-        raise DesignError("the model's factor is singular; refit the model before checking it")
-    return np.asfortranarray(np.triu(inv))
 
 
 def tile_map(R11_inv: np.ndarray, cols: np.ndarray, beta: np.ndarray, width: int) -> np.ndarray:
@@ -99,7 +86,7 @@ class PassPlan:
         # LAPACK's triangular inverse has small componentwise residuals (Du Croz & Higham, IMA J.
         # Numer. Anal. 12, 1992); leverages and sandwiches match statsmodels to 1e-10 / 1e-8
         # (tests/test_robust.py, test_diagnostics.py)
-        self.R11_inv = _upper_inverse(self.R11)
+        self.R11_inv = upper_inverse(self.R11)
         self.robust = robust
         self._maps: dict[int, np.ndarray] = {}
         # categoricals (unweighted): blocks come without indicator columns (level codes instead);

@@ -30,6 +30,9 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import qr, solve_triangular
+from scipy.linalg.lapack import dtrtri
+
+from tallfit.errors import DesignError
 
 DEFAULT_RANK_TOL = 1e-11
 EPS = np.finfo(np.float64).eps
@@ -158,3 +161,14 @@ def solve_exact(R: np.ndarray, names: list[str], rank_tol: float = DEFAULT_RANK_
     kappa = condition_number(R11)
     digits = coefficient_digits(R11, r12, rho, beta)
     return ExactSolution(keep, R11, r12, rho, beta, aliases, kappa, digits)
+
+
+def upper_inverse(R: np.ndarray) -> np.ndarray:
+    """R⁻¹ of a nonsingular upper triangle, Fortran order."""
+    p = R.shape[0]
+    if p == 0:
+        return np.zeros((0, 0), order="F")
+    inv, info = dtrtri(R, lower=0)
+    if info != 0:  # a zero pivot: the model would not have kept an aliased term
+        raise DesignError("the model's factor is singular (a term it kept is aliased); refit the model")
+    return np.asfortranarray(np.triu(inv))
