@@ -174,6 +174,11 @@ def test_level_tables_equal_python_dictionaries():
     ids = it.ids(keys)
     ref = {}
     assert ids.tolist() == [ref.setdefault(int(k), len(ref)) for k in keys]
+    # in batches of mostly known keys, some new and negative: the table grows inside a batch
+    for b in range(6):
+        part = np.concatenate([rng.choice(keys, 700), -rng.integers(1, 1 << 50, 300 * b)])
+        assert it.ids(part).tolist() == [ref.setdefault(int(k), len(ref)) for k in part]
+    assert it.n == len(ref) and it.table.size >= 2 * it.n
 
 
 def test_table_adoption_and_shared_seed_equal_plain_hashing():
