@@ -84,3 +84,33 @@ def test_help_and_version(capsys):
     assert e.value.code == 0
     assert "fit" in capsys.readouterr().out
     assert main(["--version"]) == 0
+
+
+def test_categorical_model_with_robust_errors_report_and_scoring(fleet, tmp_path, capsys):
+    """fit --categorical with --robust and --cluster (the robust sums of a model with indicator
+    columns once stopped with an internal error), then report and predict with intervals to
+    Parquet with a pass-through id."""
+    feats = ",".join(synthetic_gen.FEATURES)
+    model = tmp_path / "cat.json"
+    code, out, err = _run(capsys, "fit", fleet / "train", "--target", "power_w", "--features", feats,
+                          "--categorical", "machine_class,region", "--robust", "HC3", "--cluster", "rack",
+                          "--out", model, "--no-progress")
+    assert code == 0, err
+    code, out, err = _run(capsys, "show", model, "--json")
+    doc = json.loads(out)
+    names = [t["name"] for t in doc["terms"]]
+    assert any(n.startswith("machine_class[") for n in names) and any(n.startswith("region[") for n in names)
+    robust = doc["robust"]
+    assert robust["selected"] == "cluster:rack" and {"HC3", "cluster:rack"} <= set(robust["estimators"])
+    assert len(robust["estimators"]["HC3"]["std_error"]) == len(names)
+    code, out, err = _run(capsys, "report", model, fleet / "train", "--out", tmp_path / "r.html", "--no-progress",
+                          "--no-images")
+    assert code == 0, err
+    assert (tmp_path / "r.html").stat().st_size > 0
+    pred = tmp_path / "pred.parquet"
+    code, out, err = _run(capsys, "predict", model, fleet / "new", "--out", pred, "--intervals",
+                          "--keep", "host_id", "--no-progress")
+    assert code == 0, err
+    table = pq.read_table(pred)
+    assert table.column_names == ["host_id", "prediction", "ci_low", "ci_high", "pi_low", "pi_high"]
+    assert table.num_rows == 2000 and table["prediction"].null_count < 100
