@@ -80,3 +80,17 @@ def median_runs(script: str, args: list, repeats: int) -> dict:
     out["all_seconds"] = [round(r["seconds"], 3) for r in runs]
     out["peak_rss_mb"] = max(r["peak_rss_mb"] for r in runs)
     return out
+
+
+def alternating_rounds(cases: dict, repeats: int) -> tuple[dict, dict]:
+    """Wall and CPU seconds of each case, the cases one after the other in each of ``repeats``
+    rounds (so every round's ratios compare runs made minutes apart at most)."""
+    seconds: dict = {k: [] for k in cases}
+    cpu: dict = {k: [] for k in cases}
+    for _ in range(repeats):
+        for name, run in cases.items():
+            t, c = time.perf_counter(), time.process_time()
+            run()
+            seconds[name].append(time.perf_counter() - t)
+            cpu[name].append(time.process_time() - c)
+    return seconds, cpu

@@ -69,26 +69,30 @@ def write_data(path: Path, rows: int, hosts: int, key_type: str = "dict") -> Non
     os.replace(tmp, path)
 
 
+def scan_columns(path: str, columns: list[str], labels: list[str]) -> None:
+    """The floor: pyarrow iter_batches of ``columns`` into float64 buffers and of ``labels`` (their
+    dictionary indices, or the integers) to numpy, pre-buffering off."""
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
+    for rb in pf.iter_batches(batch_size=65_536, columns=columns + labels):
+        buf = np.empty((rb.num_rows, len(columns)), order="F")
+        for j, c in enumerate(columns):
+            buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
+        for c in labels:
+            col = rb.column(c)
+            (col.indices if hasattr(col, "indices") else col).to_numpy(zero_copy_only=False)
+
+
 def run_one(mode: str, path: str) -> dict:
     """One measurement in this process (timed after the imports)."""
     import tallfit
 
     tallfit.fit  # noqa: B018 - resolve the lazy import before timing
     if mode in ("scan", "scan_labels"):
-        import numpy as np
-        import pyarrow.parquet as pq
-
         def work():
-            pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
-            cols = list(BASE_FEATURES) + [TARGET]
-            labels = LABELS if mode == "scan_labels" else []
-            for rb in pf.iter_batches(batch_size=65_536, columns=cols + labels):
-                buf = np.empty((rb.num_rows, len(cols)), order="F")
-                for j, c in enumerate(cols):
-                    buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
-                for c in labels:
-                    col = rb.column(c)
-                    (col.indices if hasattr(col, "indices") else col).to_numpy(zero_copy_only=False)
+            scan_columns(path, list(BASE_FEATURES) + [TARGET], LABELS if mode == "scan_labels" else [])
     else:
         kwargs = {}
         if mode in ("categorical", "both"):

@@ -21,24 +21,10 @@ from __future__ import annotations
 import argparse
 import statistics
 import tempfile
-import time
 from pathlib import Path
 
-from _measure import BASE_FEATURES, OUT, TARGET
-
-
-def scan(path: str, columns: list[str], labels: list[str]) -> None:
-    import numpy as np
-    import pyarrow.parquet as pq
-
-    pf = pq.ParquetFile(path, pre_buffer=False, buffer_size=256 << 10)
-    for rb in pf.iter_batches(batch_size=65_536, columns=columns + labels):
-        buf = np.empty((rb.num_rows, len(columns)), order="F")
-        for j, c in enumerate(columns):
-            buf[:, j] = rb.column(c).to_numpy(zero_copy_only=False)
-        for c in labels:
-            col = rb.column(c)
-            (col.indices if hasattr(col, "indices") else col).to_numpy(zero_copy_only=False)
+from _measure import BASE_FEATURES, OUT, TARGET, alternating_rounds
+from bench_design import scan_columns as scan
 
 
 def main() -> None:
@@ -76,14 +62,7 @@ def main() -> None:
         for name, run in cases.items():
             if name.startswith("predict") or name.startswith("  "):
                 run()  # compile or load the cached kernels
-        seconds: dict[str, list[float]] = {k: [] for k in cases}
-        cpu: dict[str, list[float]] = {k: [] for k in cases}
-        for _ in range(args.repeats):
-            for name, run in cases.items():
-                t, c = time.perf_counter(), time.process_time()
-                run()
-                seconds[name].append(time.perf_counter() - t)
-                cpu[name].append(time.process_time() - c)
+        seconds, cpu = alternating_rounds(cases, args.repeats)
     print(f"{args.rows:,} rows, host_id {args.hosts:,} levels ({args.key_type}), median of {args.repeats} rounds")
     print(f"{'run':32} {'seconds':>8} {'× its scan':>11} {'CPU s':>7}")
     floor = None

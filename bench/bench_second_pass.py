@@ -28,7 +28,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from _measure import OUT, TARGET, features_for
+from _measure import OUT, TARGET, alternating_rounds, features_for
 from bench_scan import scan_parquet
 
 
@@ -71,14 +71,7 @@ def main() -> None:
         }
         for run in list(cases.values())[1:]:
             run()  # compile or load the cached kernels
-        seconds: dict[str, list[float]] = {k: [] for k in cases}
-        cpu: dict[str, list[float]] = {k: [] for k in cases}
-        for _ in range(args.repeats):
-            for name, run in cases.items():
-                t, c = time.perf_counter(), time.process_time()
-                run()
-                seconds[name].append(time.perf_counter() - t)
-                cpu[name].append(time.process_time() - c)
+        seconds, cpu = alternating_rounds(cases, args.repeats)
         scan = seconds["bare scan (floor)"]
         print(f"{args.rows:,} rows × {len(features)} features in {len(data)} file(s), batch_rows={br:,}, "
               f"median of {args.repeats} rounds")

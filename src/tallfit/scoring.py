@@ -19,7 +19,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tallfit.atomic import atomic_path, check_writable
-from tallfit.diagnostics.kernels import gather_add
+from tallfit.diagnostics.kernels import gather_add, level_tables
 from tallfit.design.design import Design, check_design_columns, prediction_columns
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, chunk_label
 from tallfit.engine.prefetch import prefetched
@@ -79,15 +79,9 @@ class _Scorer:
         self.beta_full = np.zeros(len(names))
         self.beta_full[self.keep] = self.beta
         self.dense = len(names)
-        self.level_effects: list[np.ndarray] = []  # per coder: 0, 0, then β of its columns (codes + 2)
-        if self.design.level_codes:
-            self.dense -= sum(c.n_columns for c in self.design.coders)
-            at = self.dense
-            for c in self.design.coders:
-                lut = np.zeros(c.n_columns + 2)
-                lut[2:] = self.beta_full[at: at + c.n_columns]
-                self.level_effects.append(lut)
-                at += c.n_columns
+        widths = [c.n_columns for c in self.design.coders] if self.design.level_codes else []
+        self.dense -= sum(widths)
+        self.level_effects = level_tables(self.beta_full, self.dense, widths)  # β of each code + 2
         self.intervals = intervals
         lo, hi = zip(*model.feature_ranges().values()) if spec.features else ((), ())
         self.lo, self.hi = np.asarray(lo), np.asarray(hi)
@@ -114,13 +108,7 @@ class _Scorer:
             full = np.zeros((len(names), p))
             full[self.keep] = upper_inverse(R11)
             self.z_dense = np.asfortranarray(full[: self.dense])
-            self.z_levels = []
-            at = self.dense
-            for c in self.design.coders:
-                T = np.zeros((c.n_columns + 2, p), order="F")
-                T[2:] = full[at: at + c.n_columns]
-                self.z_levels.append(T)
-                at += c.n_columns
+            self.z_levels = level_tables(full, self.dense, widths)
             self.s = model.inference.residual_std
             self.q = float(t_ppf(0.5 + level / 2.0, model.inference.df_resid))
 

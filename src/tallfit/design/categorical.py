@@ -317,7 +317,8 @@ class LevelCoder:
             self.n_columns = self._ints.n
             return ids
         if self._ints is not None:  # integer levels here, found another way there: one by one
-            return np.array([self._column_of(level, "") for level in sorted(other.index, key=other.index.__getitem__)], dtype=np.int64)
+            levels = sorted(other.index, key=other.index.__getitem__)
+            return np.array([self._column_of(level, "") for level in levels], dtype=np.int64)
         if self._table is None and not self._index:
             self._table = StringTable()
         if self._table is not None and other._table is not None:

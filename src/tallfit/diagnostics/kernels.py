@@ -88,6 +88,19 @@ def scatter_rows(codes, W, S):
             S[codes[i], j] += W[i, j]
 
 
+def level_tables(M: np.ndarray, start: int, widths) -> list[np.ndarray]:
+    """Per categorical (``widths[c]`` indicator columns, laid out in M's rows from ``start`` on):
+    M's rows of its columns after two zero rows for the codes −2 (null) and −1 (reference), so a
+    row's code + 2 indexes its table (``gather_add``, or ``table[codes + 2]``)."""
+    out, at = [], start
+    for w in widths:
+        T = np.zeros((w + 2,) + M.shape[1:], order="F")
+        T[2:] = M[at: at + w]
+        out.append(T)
+        at += w
+    return out
+
+
 @numba.njit(cache=True, nogil=True)
 def gather_add(codes, r0, T, W):  # pragma: no cover - compiled
     """W[i, :] += T[codes[r0 + i] + 2, :] for W's rows (rows 0, 1 of T: the codes −2, −1)."""

@@ -22,7 +22,8 @@ import pyarrow as pa
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
-from tallfit.diagnostics.kernels import SCORES, SCORES_ALL, gather_add, grid_counts, grid_index, tile_scores
+from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, grid_counts, grid_index, level_tables,
+                                         tile_scores)
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
 from tallfit.engine.local import span_label
@@ -102,12 +103,7 @@ class PassPlan:
             self.dense = len(names) - sum(widths)
             full = tile_map(self.R11_inv, self.cols, self.beta, len(names) + 1)
             self._maps[self.dense + 1] = np.asfortranarray(np.vstack([full[: self.dense], full[-1:]]))
-            at = self.dense
-            for w in widths:
-                T = np.zeros((w + 2, self.p + 1), order="F")  # codes −2 (null), −1 (reference): 0
-                T[2:] = full[at: at + w]
-                self.level_maps.append(T)
-                at += w
+            self.level_maps = level_tables(full, self.dense, widths)
         self.features = [f for f in spec.features if f in model.terms]
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
         self.intercept = bool(spec.intercept and names[0] in model.terms)
