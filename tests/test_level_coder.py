@@ -104,3 +104,23 @@ def test_fixed_coder_maps_integer_values_through_their_strings():
     codes = fixed.codes(pa.array([12, 7, None, -3, 99], type=pa.int64()), "rows")
     assert codes.tolist() == [1, 0, -2, -1, -1]
     assert fixed.unseen_rows == 1 and fixed.unseen_levels == {"99": 1}
+
+
+def test_fixed_coder_on_dictionaries_looks_up_used_entries_only():
+    """A fixed coder maps a dictionary column by its entries, once per dictionary: an entry no row
+    uses (a level the model never saw) is no error; once a later batch with the same dictionary
+    uses it, it is; a null entry and a null row code as nulls (-2)."""
+    from tallfit.errors import DesignError
+
+    labels = ["a", "b", None, "zz"]  # "zz": never seen by the model
+    fixed = LevelCoder("rack", fixed={"a": 0, "b": -1}, n_columns=1)
+    assert fixed.codes(dictionary([1, 0, 2, 0], labels), "batch 1").tolist() == [-1, 0, -2, 0]
+    nulls = pa.DictionaryArray.from_arrays(pa.array([0, None, 1], type=pa.int32()), pa.array(labels))
+    assert fixed.codes(nulls, "batch 2").tolist() == [0, -2, -1]
+    with pytest.raises(DesignError, match="level 'zz' in batch 3"):
+        fixed.codes(dictionary([0, 3], labels), "batch 3")
+    lenient = LevelCoder("rack", fixed={"a": 0, "b": -1}, n_columns=1, unseen="reference")
+    for _ in range(2):  # the second batch reuses the dictionary's map, and still counts its rows
+        assert lenient.codes(dictionary([3, 0, 3], labels), "rows").tolist() == [-1, 0, -1]
+    assert lenient.unseen_rows == 4
+    assert fixed.codes(dictionary([0, 1], ["b", "a"]), "rows").tolist() == [-1, 0]  # another dictionary: a new map

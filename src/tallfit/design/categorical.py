@@ -204,6 +204,7 @@ class LevelCoder:
         self._table: StringTable | None = None
         self._ints: IntTable | None = None  # discovery of an integer column's levels
         self._last: tuple[pa.Array, np.ndarray] | None = None  # a batch dictionary and its columns
+        self._last_fixed: tuple[pa.Array, np.ndarray] | None = None  # the same for a fixed coder
 
     @property
     def index(self) -> dict[str, int]:
@@ -235,22 +236,46 @@ class LevelCoder:
         if isinstance(arr, pa.ChunkedArray):
             arr = arr.combine_chunks()
         if pa.types.is_dictionary(arr.type):
-            enc = pc.dictionary_encode(level_strings(arr))
-            levels = enc.dictionary
+            codes = self._dictionary_entry_codes(arr, label)
         else:  # the distinct values first, then only those as strings (10^7 casts cost seconds)
             enc = pc.dictionary_encode(arr)
-            levels = level_strings(enc.dictionary)
-        if isinstance(enc, pa.ChunkedArray):
-            enc = enc.combine_chunks()
-        local = np.append(self._known_columns(levels, label), -2)  # nulls index the last slot
-        idx = enc.indices.to_numpy(zero_copy_only=False)
-        idx = np.where(enc.indices.is_null().to_numpy(zero_copy_only=False), len(enc.dictionary), idx)
-        codes = local[idx.astype(np.int64)]
+            if isinstance(enc, pa.ChunkedArray):
+                enc = enc.combine_chunks()
+            local = np.append(self._known_columns(level_strings(enc.dictionary), label), -2)  # nulls: the last slot
+            idx = enc.indices.to_numpy(zero_copy_only=False)
+            idx = np.where(enc.indices.is_null().to_numpy(zero_copy_only=False), len(enc.dictionary), idx)
+            codes = local[idx.astype(np.int64)]
         if (codes == -3).any():
             bad = codes == -3
             self.unseen_rows += int(bad.sum())
             codes = np.where(bad, self.other if (self.unseen == "other" and self.other is not None) else -1, codes)
         return codes
+
+    def _dictionary_entry_codes(self, arr: pa.DictionaryArray, label: str) -> np.ndarray:
+        """Rows of a dictionary column take the column of their dictionary entry; entries are
+        looked up once per dictionary (kept while batches share it, as a Parquet row group's do),
+        and only when a row uses them: an unused entry of a level the model never saw is no
+        unseen row."""
+        dictionary = arr.dictionary
+        d = len(dictionary)
+        if self._last_fixed is None or not self._last_fixed[0].equals(dictionary):
+            local = np.full(d + 1, -4, dtype=np.int64)  # -4: not looked up yet
+            local[d] = -2  # null rows index the last slot
+            self._last_fixed = (dictionary, local)
+        local = self._last_fixed[1]
+        indices = arr.indices.fill_null(d) if arr.null_count else arr.indices
+        idx = indices.to_numpy(zero_copy_only=False).astype(np.int64, copy=False)
+        todo = np.flatnonzero(local[:d] == -4)
+        if todo.size:
+            used = np.bincount(idx, minlength=d + 1)[:d] > 0
+            todo = todo[used[todo]]
+        if todo.size:
+            levels = level_strings(dictionary.take(pa.array(todo)))
+            valid = levels.is_valid().to_numpy(zero_copy_only=False)
+            local[todo[~valid]] = -2  # a null inside the dictionary codes as a null row
+            if valid.any():
+                local[todo[valid]] = self._known_columns(levels.filter(pa.array(valid)), label)
+        return local[idx]
 
     def _discovered_codes(self, arr) -> np.ndarray | None:
         """Discovery mode for labels: the batch's dictionary (from Parquet, or encoded here) is
