@@ -78,9 +78,8 @@ class _Scorer:
         self.beta = model.inference.estimate
         self.beta_full = np.zeros(len(names))
         self.beta_full[self.keep] = self.beta
-        self.dense = len(names)
         widths = [c.n_columns for c in self.design.coders] if self.design.level_codes else []
-        self.dense -= sum(widths)
+        self.dense = len(names) - sum(widths)  # the columns before the categoricals' indicators
         self.level_effects = level_tables(self.beta_full, self.dense, widths)  # β of each code + 2
         self.intervals = intervals
         lo, hi = zip(*model.feature_ranges().values()) if spec.features else ((), ())
@@ -152,8 +151,6 @@ class _Scorer:
         order (ids below their count are known levels): hashing per distinct label, not per row."""
         from tallfit.design.categorical import LevelCoder, level_strings
 
-        if isinstance(keys, pa.ChunkedArray):
-            keys = keys.combine_chunks()
         if self._lookup is None:
             effects = self.absorbed["effects"]
             levels = list(effects)
@@ -170,11 +167,7 @@ class _Scorer:
             values = np.fromiter(effects.values(), dtype=float, count=len(levels))
             self._lookup = (coder, values)
         coder, values = self._lookup
-        if pa.types.is_integer(keys.type) or pa.types.is_dictionary(keys.type) or pa.types.is_string(keys.type) \
-                or pa.types.is_large_string(keys.type):
-            codes = coder.codes(keys, label)
-        else:
-            codes = coder.codes(level_strings(keys), label)
+        codes = coder.codes(keys, label)  # any key type: the coder's own paths
         known = (codes >= 0) & (codes < len(values))
         out = np.empty(len(codes))
         out[known] = values[codes[known]]

@@ -227,14 +227,14 @@ class LevelCoder:
 
     def codes(self, arr: pa.Array, label: str) -> np.ndarray:
         """Column index per row; -1 for the reference level (all zeros), -2 for a null."""
+        if isinstance(arr, pa.ChunkedArray):
+            arr = arr.combine_chunks()
         if self.discover:
             fast = self._discovered_codes(arr)
             if fast is None:
                 fast = self._discovered_int_codes(arr)
             if fast is not None:
                 return fast
-        if isinstance(arr, pa.ChunkedArray):
-            arr = arr.combine_chunks()
         if pa.types.is_dictionary(arr.type):
             codes = self._dictionary_entry_codes(arr, label)
         else:  # the distinct values first, then only those as strings (10^7 casts cost seconds)
@@ -309,8 +309,6 @@ class LevelCoder:
         """Discovery mode for an integer column: levels numbered in order of first appearance by
         a numba hash table of the values (no string per row); the level names are the values as
         strings, as on the general path. None for other column types."""
-        if isinstance(arr, pa.ChunkedArray):
-            arr = arr.combine_chunks()
         if not pa.types.is_integer(arr.type) or pa.types.is_uint64(arr.type):
             return None  # uint64 beyond 2^63 would not fit the table's int64 keys
         if self._ints is None:
@@ -335,23 +333,21 @@ class LevelCoder:
         n = other.n_columns
         if n == 0:
             return np.zeros(0, dtype=np.int64)
-        if other._ints is not None and (self._ints is not None or (self._table is None and not self._index)):
+        fresh = self._table is None and self._ints is None and not self._index
+        if other._ints is not None and (self._ints is not None or fresh):
             if self._ints is None:
                 self._ints = IntTable()
             ids = self._ints.ids(other._ints.keys[: other._ints.n])
             self.n_columns = self._ints.n
             return ids
-        if self._ints is not None:  # integer levels here, found another way there: one by one
-            levels = sorted(other.index, key=other.index.__getitem__)
-            return np.array([self._column_of(level, "") for level in levels], dtype=np.int64)
-        if self._table is None and not self._index:
+        if fresh:
             self._table = StringTable()
         if self._table is not None and other._table is not None:
             ids = self._table.adopt(other._table)
         else:
             labels = other._table.labels() if other._table is not None else \
                 pa.array(sorted(other.index, key=other.index.__getitem__), type=pa.string())
-            if self._table is None:  # levels found by the general path: one by one
+            if self._table is None:  # levels found by the general path, or integers: one by one
                 return np.array([self._column_of(level, "") for level in labels.to_pylist()], dtype=np.int64)
             ids = self._table.ids(labels)
         self.n_columns = self._table.n
