@@ -236,6 +236,26 @@ def test_absorbed_key_equals_explicit_dummies():
     np.testing.assert_allclose(pred, res.fittedvalues, rtol=1e-9)
 
 
+def test_rows_without_a_key_value_are_dropped_and_counted():
+    """A null absorbed key belongs to no level: the row is dropped (counted under the key), and
+    the fit equals statsmodels OLS with firm dummies on the other rows."""
+    df, table = _grunfeld()
+    firm = table.column("firm").to_pylist()
+    blank = [i for i in range(len(firm)) if i % 37 == 5]
+    for i in blank:
+        firm[i] = None
+    table = table.set_column(table.schema.get_field_index("firm"), "firm", pa.array(firm))
+    model = tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", batch_rows=17)
+    kept = df.drop(index=df.index[blank])
+    firms = sorted(set(kept.firm))
+    X = np.column_stack([kept.value, kept.capital, _dummies(kept.firm.to_numpy(), firms)])
+    res = sm.OLS(kept.invest.to_numpy(), X).fit()
+    assert model.accumulator.dropped_by_column == {"firm": len(blank)}
+    assert model.inference.df_resid == res.df_resid
+    np.testing.assert_allclose(model.inference.estimate, res.params[:2], rtol=1e-9)
+    np.testing.assert_allclose(model.inference.std_error, res.bse[:2], rtol=1e-9)
+
+
 def test_an_integer_key_and_categorical_equal_their_labels():
     """An integer firm code absorbed, with the integer year as a categorical, gives the fit of the
     same columns as strings (statsmodels' Grunfeld panel); the level names are the codes."""

@@ -169,6 +169,10 @@ class Design:
             if missing.any():
                 bad_rows(coder.column, missing)
             codes_all.append(codes)
+        if spec.absorb and not self.predicting:  # a row without a key value belongs to no level
+            key = batch.column(spec.absorb)
+            if key.null_count:
+                bad_rows(spec.absorb, key.is_null().to_numpy(zero_copy_only=False))
         w = None
         if spec.weights and not self.predicting:
             w = column_as_float(batch.column(spec.weights))
