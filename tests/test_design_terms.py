@@ -333,12 +333,6 @@ def test_where_skips_row_groups_and_partitions_without_changing_the_answer(tmp_p
     assert model.inference.n_used == int(sel.sum())
 
 
-def test_second_pass_refuses_an_absorbed_model():
-    df, table = _grunfeld()
-    with pytest.raises(DesignError, match="absorbed key"):
-        tallfit.fit(table, "invest", ["value", "capital"], absorb="firm", robust="HC3")
-
-
 def test_levels_merged_by_name_equal_a_direct_fit():
     rng = np.random.default_rng(12)
     n = 500

@@ -157,8 +157,8 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
     e, fitted, h = np.full(m, np.nan), np.full(m, np.nan), np.full(m, np.nan)
     g, s = np.zeros(p), np.zeros(p)
     y = np.asfortranarray(A)[:, k]
-    ZE2 = ZE.copy(order="F")
-    tile_scores(ZE, n, 100, y, mode, V, e, fitted, h, g, s, True)
+    ZE2, ZE3 = ZE.copy(order="F"), ZE.copy(order="F")
+    tile_scores(ZE, n, 100, y, mode, V, e, fitted, h, g, s, True, np.zeros(0))
     assert np.isnan(e[:100]).all() and np.isnan(h[:100]).all()
     np.testing.assert_array_equal(e[100:], ee)
     np.testing.assert_allclose(fitted[100:], y[100:] - ee, rtol=1e-15)
@@ -173,7 +173,7 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
     # without keep_scores, HC2/HC3 put the sandwich rows in the scores' place and leave V alone
     V2 = np.full_like(V, 7.0)
     g2, s2 = np.zeros(p), np.zeros(p)
-    tile_scores(ZE2, n, 100, y, mode, V2, e, fitted, h, g2, s2, False)
+    tile_scores(ZE2, n, 100, y, mode, V2, e, fitted, h, g2, s2, False, np.zeros(0))
     np.testing.assert_array_equal(s2, s)
     np.testing.assert_array_equal(g2, g)
     if mode in (SCORES_HC2, SCORES_HC3):
@@ -182,6 +182,15 @@ def test_tile_product_and_score_kernel_match_numpy(mode):
     else:
         np.testing.assert_array_equal(ZE2[:, :p], ZE[:, :p])
         np.testing.assert_array_equal(V2[np.isfinite(V)], V[np.isfinite(V)])
+    # a swept-out key's share of each row's leverage (h0 = 1/n_g) adds to ‖zᵢ‖² and moves V
+    h0 = np.linspace(0.0, 0.5, m)
+    Vr3, hr3, _, _, _ = tile_scores_reference(Z, ee, mode, h0[100:])
+    V3 = np.empty_like(V)
+    tile_scores(ZE3, n, 100, y, mode, V3, e, fitted, h, np.zeros(p), np.zeros(p), True, h0)
+    np.testing.assert_allclose(h[100:], hr3, rtol=1e-14)
+    if mode != SCORES:
+        finite = np.isfinite(Vr3)
+        np.testing.assert_allclose(V3[finite], Vr3[finite], rtol=1e-13)
 
 
 def test_a_bad_part_while_the_grid_sample_is_gathered_fails_cleanly(tmp_path, fleet):

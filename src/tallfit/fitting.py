@@ -52,7 +52,8 @@ def fit_by_group(source, spec, design, batch_rows, progress, drop_aliased, rank_
 
 
 def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
-    """Store the absorbed level effects α_g = ȳ_g − x̄_gᵀβ in the model's coding (for prediction)."""
+    """Store the absorbed level effects α_g = ȳ_g − x̄_gᵀβ in the model's coding (for prediction),
+    with each level's size and term means (for the second pass)."""
     import numpy as np
 
     acc = result.accumulator
@@ -62,6 +63,7 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
     T = np.eye(len(acc.names)) if T is None else T
     c = T[:, -1] - T[:, keep] @ result.inference.estimate
     alpha = absorber.raw_means_dot(c)
+    means = absorber.raw_means_dot(T[:, keep])  # each level's means of the model's terms
     index = absorber.coder.index  # level → id
     ids = np.fromiter(index.values(), dtype=np.int64, count=len(index))
     counts = absorber.counts
@@ -77,6 +79,10 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
         "r_squared_within": absorbed.get("r_squared_within"),
         "mean_effect": mean_effect,
         "effects": effects,
+        # per level, in the order of "effects": its rows (weight sum when weighted) and its means
+        # of the terms, which the second pass centres rows on (leverage 1/n_g + ‖zᵢ‖²)
+        "sizes": counts[used].tolist(),
+        "means": np.ascontiguousarray(means[used]),  # levels × terms (packed in model files)
     }
     result.coding = coding
 

@@ -10,10 +10,13 @@ Layout (format ``tallfit-model``, version 1)::
 
 Floats are written with Python's shortest round-trip repr, so they load back bit for bit;
 non-finite values, which JSON lacks, are written as the strings "NaN", "Infinity", "-Infinity".
+One large table, an absorbed key's level means (levels × terms, for the second pass), is written
+as {"dtype": "<f8", "shape": [rows, columns], "base64": ...}: the same bits in a third of the text.
 """
 
 from __future__ import annotations
 
+import base64
 import json
 import math
 import os
@@ -88,6 +91,31 @@ def _robust_from_doc(r: Any) -> dict | None:
     return r
 
 
+def pack_array(a: np.ndarray) -> dict:
+    """A float64 matrix as JSON: little-endian bytes in base64, with its shape."""
+    a = np.ascontiguousarray(a, dtype="<f8")
+    return {"dtype": "<f8", "shape": list(a.shape), "base64": base64.b64encode(a.tobytes()).decode("ascii")}
+
+
+def unpack_array(d: Any) -> np.ndarray:
+    """The matrix ``pack_array`` wrote (a list of rows is read too)."""
+    if isinstance(d, dict):
+        if d.get("dtype") != "<f8":
+            raise ValueError(f"array of dtype {d.get('dtype')!r}, expected '<f8'")
+        flat = np.frombuffer(base64.b64decode(d["base64"], validate=True), dtype="<f8")
+        return flat.reshape([int(n) for n in d["shape"]]).astype(np.float64)
+    return _floats(d)
+
+
+def _coding_doc(coding: dict | None, load: bool = False) -> dict | None:
+    """The coding with an absorbed key's level means packed (or, on ``load``, unpacked)."""
+    if not coding or "means" not in (coding.get("absorbed") or {}):
+        return coding
+    absorbed = dict(coding["absorbed"])
+    absorbed["means"] = unpack_array(absorbed["means"]) if load else pack_array(np.asarray(absorbed["means"]))
+    return {**coding, "absorbed": absorbed}
+
+
 def model_to_dict(result: FitResult) -> dict:
     inf = result.inference
     inference = {name: getattr(inf, name) for name in Inference.__dataclass_fields__}
@@ -108,7 +136,7 @@ def model_to_dict(result: FitResult) -> dict:
             "source": result.source,
             "options": result.options,
             "warnings": result.warnings,
-            "coding": result.coding,
+            "coding": _coding_doc(result.coding),
             **({"robust": result.robust} if result.robust else {}),
         },
         "accumulator": result.accumulator.to_state(),
@@ -166,7 +194,7 @@ def model_from_dict(doc: Any, where: str = "model") -> FitResult:
             source=m.get("source") or {},
             options=m.get("options") or {},
             warnings=[str(w) for w in m.get("warnings") or []],
-            coding=m.get("coding"),
+            coding=_coding_doc(m.get("coding"), load=True),
             robust=_robust_from_doc(m.get("robust")),
         )
     except (KeyError, TypeError, ValueError) as exc:

@@ -82,7 +82,8 @@ class FitResult:
         names = self.accumulator.names[:-1]
         Rk = reduce_factor(self.accumulator.R, [names.index(t) for t in self.terms])
         has_intercept = bool(self.terms) and self.terms[0] == "(intercept)"
-        return collinearity(Rk, list(self.terms), self.inference.estimate, has_intercept, self.inference.n_used)
+        return collinearity(Rk, list(self.terms), self.inference.estimate, has_intercept, self.inference.n_used,
+                            within=bool(self.spec.absorb))
 
     def term_table(self) -> list[dict[str, Any]]:
         inf = self.inference

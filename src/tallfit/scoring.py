@@ -149,21 +149,12 @@ class _Scorer:
         """Absorbed level effect per row; unseen levels per the policy (mean effect if allowed).
         Rows find their level through a discovering level coder seeded with the model's levels in
         order (ids below their count are known levels): hashing per distinct label, not per row."""
-        from tallfit.design.categorical import LevelCoder, level_strings
+        from tallfit.design.categorical import level_seed, level_strings, seeded_coder
 
         if self._lookup is None:
             effects = self.absorbed["effects"]
             levels = list(effects)
-            coder = LevelCoder(self.absorbed["column"])
-            ints = None
-            if pa.types.is_integer(keys.type) and not pa.types.is_uint64(keys.type):
-                try:
-                    ints = np.array([int(v) for v in levels], dtype=np.int64)
-                except (ValueError, OverflowError):
-                    ints = None  # labels that are not integers: every row of this column is unseen
-            seeded = coder.codes(pa.array(ints) if ints is not None else pa.array(levels, type=pa.string()), "")
-            if not np.array_equal(seeded, np.arange(len(levels))):  # pragma: no cover - a model file edited by hand
-                raise DesignError(f"the model's absorbed levels of {self.absorbed['column']!r} are not distinct")
+            coder = seeded_coder(self.absorbed["column"], level_seed(levels, keys.type))
             values = np.fromiter(effects.values(), dtype=float, count=len(levels))
             self._lookup = (coder, values)
         coder, values = self._lookup

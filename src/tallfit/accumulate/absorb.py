@@ -265,15 +265,16 @@ class AbsorbAccumulator:
         )
 
     def raw_means_dot(self, c: np.ndarray) -> np.ndarray:
-        """(level means of every column of the design ``inner`` describes) @ c, one value per key
-        level, without forming the levels × columns matrix of means (10^5 × 64 is 51 MB)."""
+        """(level means of every column of the design ``inner`` describes) @ c (a vector or a
+        matrix of columns), one row per key level, without forming the levels × columns matrix of
+        means (10^5 × 64 is 51 MB)."""
         G = self.coder.n_columns
         k = self.W.k
-        out = self.means[:G, :-1] @ c[: k - 1] + self.means[:G, -1] * c[-1]
+        out = self.means[:G, :-1] @ c[: k - 1] + self.means[:G, -1:] @ c[-1:]
         if self.coders:
             pos = (k - 1) + self._indicator_positions()
             Wt = np.where(self.counts[:G] > 0, self.counts[:G], 1.0)
-            out += (self.key_level[:G, : len(self.members)] @ c[pos]) / Wt
+            out += (self.key_level[:G, : len(self.members)] @ c[pos]) / (Wt if c.ndim == 1 else Wt[:, None])
         return out
 
     def levels(self) -> list[str]:

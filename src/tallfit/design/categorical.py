@@ -418,3 +418,26 @@ def recount_levels(A: np.ndarray, names: list[str], levels: dict[str, dict[str, 
                 if c:
                     d[lvl] = c
     return out
+
+
+def level_seed(levels: list[str], key_type: pa.DataType) -> pa.Array | None:
+    """The labels of a model's levels as an array to seed a discovering coder for a key column of
+    ``key_type`` (integers for an integer key; None when such a key can hold none of them)."""
+    if pa.types.is_integer(key_type) and not pa.types.is_uint64(key_type):
+        try:
+            return pa.array([int(v) for v in levels], type=pa.int64())
+        except (ValueError, OverflowError):
+            return None  # labels that are not integers: every row of this key is a new level
+    return pa.array(levels, type=pa.string())
+
+
+def seeded_coder(column: str, seed: pa.Array | None) -> LevelCoder:
+    """A discovering coder whose first ids are the seed's levels in order: a row's id below their
+    count is a known level, any other a level first seen here. Rows find their level through the
+    coder's hash tables (per distinct label, not per row)."""
+    coder = LevelCoder(column)
+    if seed is not None and len(seed):
+        ids = coder.codes(seed, "")
+        if not np.array_equal(ids, np.arange(len(seed))):  # pragma: no cover - a model file edited by hand
+            raise DesignError(f"the model's levels of {column!r} are not distinct")
+    return coder

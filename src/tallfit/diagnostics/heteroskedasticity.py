@@ -7,6 +7,10 @@ orthonormal coordinates zᵢ = R11⁻ᵀxᵢ the explained sum of squares is ‖
 intercept's share, so one pass suffices: with an intercept first, ESS = ‖g[1:]‖² exactly, and
 the total is the centred sum of squares of u, merged across blocks by Chan, Golub & LeVeque's
 update (Am. Statistician 37, 1983), never by Σu² − (Σu)²/n.
+
+With an absorbed key the terms are the rows centred on their level's means (``centred``): every
+zᵢ column sums to zero, so the auxiliary regression on a constant and those terms has
+ESS = ‖g‖² and p degrees of freedom (levels themselves are not among its regressors).
 """
 
 from __future__ import annotations
@@ -28,10 +32,11 @@ class BreuschPaganSums:
     n: int = 0
     mean: float = 0.0
     m2: float = 0.0  # Σ (uᵢ − ū)²
+    centred: bool = False  # terms centred on an absorbed key's levels (no intercept column)
 
     @classmethod
-    def create(cls, p: int, intercept: bool) -> "BreuschPaganSums":
-        return cls(p, intercept, np.zeros(p))
+    def create(cls, p: int, intercept: bool, centred: bool = False) -> "BreuschPaganSums":
+        return cls(p, intercept, np.zeros(p), centred=centred)
 
     def add_squares(self, e: np.ndarray) -> None:
         """Fold one block's uᵢ = eᵢ² into the centred sums (``g`` gets Σ zᵢuᵢ from
@@ -50,30 +55,31 @@ class BreuschPaganSums:
         self.n = n
 
     def merge(self, other: "BreuschPaganSums") -> "BreuschPaganSums":
-        out = BreuschPaganSums(self.p, self.intercept, self.g + other.g, self.n, self.mean, self.m2)
+        out = BreuschPaganSums(self.p, self.intercept, self.g + other.g, self.n, self.mean, self.m2, self.centred)
         if other.n:
             out._combine(other.n, other.mean, other.m2)
         return out
 
     def result(self) -> dict[str, Any] | None:
         """The test, or None without an intercept (the auxiliary regression needs a constant)."""
-        n, p = self.n, self.p
-        if not self.intercept or p < 2:
+        n = self.n
+        if self.centred:  # a constant beside the p centred terms: p + 1 coefficients
+            df, k, ess = self.p, self.p + 1, float(self.g @ self.g)
+        else:
+            df, k, ess = self.p - 1, self.p, float(self.g[1:] @ self.g[1:])
+        if not (self.intercept or self.centred) or df < 1:
             return None
-        ess = float(self.g[1:] @ self.g[1:])
         tss = self.m2
-        df_model = p - 1
         r2 = ess / tss if tss > 0 else float("nan")
         lm = n * r2
-        df = p - 1
         with np.errstate(divide="ignore", invalid="ignore"):
-            f = (ess / df_model) / ((tss - ess) / (n - p)) if df_model > 0 and tss > ess else float("nan")
+            f = (ess / df) / ((tss - ess) / (n - k)) if tss > ess else float("nan")
         return {
             "statistic": float(lm),
             "df": int(df),
             "p_value": float(chi2_sf(lm, df)) if df > 0 else float("nan"),
             "f_statistic": float(f),
-            "f_p_value": float(f_sf(f, df_model, n - p)) if np.isfinite(f) else float("nan"),
+            "f_p_value": float(f_sf(f, df, n - k)) if np.isfinite(f) else float("nan"),
             "r_squared_aux": float(r2),
             "form": "Koenker (studentised)",
         }

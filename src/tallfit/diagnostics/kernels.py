@@ -157,10 +157,11 @@ SCORES_ALL = 4  # V = [w | d·w], d = h / (1 − h): every HC meat from one Gram
 # reassoc lets the column sums use SIMD lanes (a fixed order for a given build: deterministic);
 # no flag that assumes finite values, since ∞ marks a row of leverage 1
 @numba.njit(cache=True, nogil=True, fastmath={"reassoc", "nsz"})
-def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum, keep_scores):
+def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum, keep_scores, h0):
     """From a tile ZE = [Z | e] (rows 0..m-1; Z = X R11⁻¹ and e = y − Xβ, one product of the design
     rows with PassPlan.tile_map), for the block's rows r0..r0+m-1: e, fitted = y − e and the
-    leverage h = ‖zᵢ‖²; score_sum += Σ w and bp_g += Σ e²·z (Breusch–Pagan) for the scores
+    leverage h = h0 + ‖zᵢ‖² (h0: the block's rows' share of swept-out levels, 1/n_g; empty: 0);
+    score_sum += Σ w and bp_g += Σ e²·z (Breusch–Pagan) for the scores
     w = e·z. Z's columns become the scores (in place) and V the sandwich rows of ``mode`` (V unused
     for SCORES); or, for HC2 and HC3 unless ``keep_scores``, Z's columns become the sandwich rows
     themselves (V unused): no second tile to write and read back when nothing else needs w."""
@@ -175,6 +176,10 @@ def tile_scores(ZE, m, r0, y, mode, V, e, fitted, h, bp_g, score_sum, keep_score
         eo[i] = r
         fo[i] = yv[i] - r
         ho[i] = 0.0
+    if h0.shape[0]:
+        hb = h0[r0 : r0 + m]
+        for i in range(m):
+            ho[i] = hb[i]
     for j in range(p):
         zj = ZE[:m, j]
         for i in range(m):
@@ -249,9 +254,9 @@ def scatter_rows_reference(codes: np.ndarray, W: np.ndarray, groups: int) -> np.
     return S
 
 
-def tile_scores_reference(Z: np.ndarray, e: np.ndarray, mode: int):
+def tile_scores_reference(Z: np.ndarray, e: np.ndarray, mode: int, h0: np.ndarray | None = None):
     """(V, h, w, Σ w, Σ e²·z) by numpy, as ``tile_scores`` computes them (V = w for SCORES)."""
-    h = np.einsum("ij,ij->i", Z, Z)
+    h = np.einsum("ij,ij->i", Z, Z) + (0.0 if h0 is None else h0)
     W = Z * e[:, None]
     with np.errstate(divide="ignore", invalid="ignore"):
         one = np.where(h < 1.0, 1.0 - h, 0.0)

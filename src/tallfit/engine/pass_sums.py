@@ -8,7 +8,8 @@ the Breusch–Pagan sums, and one cross product (kernels.products) the sandwich 
 HC estimator (or of all four); cluster score sums for one key or two (and their pairs); binned residual sums per
 feature; then per block the fitted-value bins, a fitted × residual histogram, the residual sketch
 (MAE, quantiles) and the rows with the largest residuals and leverages, with their pass-through
-id columns.
+id columns. With an absorbed key, each row's level adds its row of the level table to [Z | e] and
+1/n_g to the leverage (engine/absorbed_rows.py).
 """
 
 from __future__ import annotations
@@ -25,6 +26,7 @@ from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
 from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, grid_counts, grid_index, level_tables,
                                          tile_scores)
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
+from tallfit.engine.absorbed_rows import ONE_ROW_LEVEL, AbsorbedRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
 from tallfit.engine.local import span_label
 from tallfit.engine.parallel import BufferPool
@@ -32,6 +34,7 @@ from tallfit.results import FitResult
 from tallfit.solve.exact import reduce_factor, upper_inverse
 from tallfit.solve.robust import ClusterSums, SandwichSums
 
+_NO_ROWS = np.zeros(0)
 HEAT_CELLS = 64  # fitted × residual histogram: 64 × 64 cells over the fitted grid and ±4 s
 TILE_ROWS = 4096  # rows per tile: its A rows, Z, V and the cell sums (≈ 2.7 MB at p = 21) stay near the core
 
@@ -55,6 +58,7 @@ class SecondPass:
     residuals: ResidualSketch | None = None
     top_residuals: TopRows | None = None
     top_leverage: TopRows | None = None
+    rows_exact: int = 0  # rows of one-row absorbed levels: fitted exactly, left out (absorbed_rows.py)
 
 
 def tile_map(R11_inv: np.ndarray, cols: np.ndarray, beta: np.ndarray, width: int) -> np.ndarray:
@@ -90,11 +94,14 @@ class PassPlan:
         self.R11_inv = upper_inverse(self.R11)
         self.robust = robust
         self._maps: dict[int, np.ndarray] = {}
+        coding = model.coding or {}
+        # an absorbed key: each row's level adds its row [−x̄_gᵀR11⁻¹ | −α_g] to [Z | e] by a gather,
+        # and 1/n_g to the leverage (engine/absorbed_rows.py)
+        self.absorbed = AbsorbedRows(coding["absorbed"], self.R11_inv) if spec.absorb else None
         # categoricals (unweighted): blocks come without indicator columns (level codes instead);
         # [Z | e] is then the product of the dense columns with their rows of the tile map plus,
         # per categorical, the map's row of each row's level (one gather instead of a product
         # over mostly-zero columns: ≈ 5× fewer operations with 58 indicators beside 7 columns)
-        coding = model.coding or {}
         self.level_codes = bool(spec.categorical) and not getattr(spec, "weights", None) and "columns" in coding
         self.level_maps: list[np.ndarray] = []
         self.dense = len(names)
@@ -106,7 +113,7 @@ class PassPlan:
             self.level_maps = level_tables(full, self.dense, widths)
         self.features = [f for f in spec.features if f in model.terms]
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
-        self.intercept = bool(spec.intercept and names[0] in model.terms)
+        self.intercept = bool(spec.has_intercept_column and names[0] in model.terms)
         # weighted rows arrive scaled by √w: residuals are then √w·e (the sandwich wants exactly
         # that); binned summaries need the unscaled values, which only an intercept column gives
         self.weighted = bool(getattr(spec, "weights", None))
@@ -127,6 +134,8 @@ class PassPlan:
         out = a @ beta
         for T, codes in zip(self.level_maps, block.codes if self.level_codes else []):
             out -= T[codes + 2, self.p]  # the map's last column holds −β
+        if self.absorbed is not None:
+            out += self.absorbed.alpha[block.key_codes]
         return out
 
     def tile_map(self, width: int) -> np.ndarray:
@@ -174,7 +183,7 @@ class PartSums:
         p = plan.p
         self.out = out = SecondPass(terms=list(plan.terms), features=list(plan.features))
         out.sandwich = SandwichSums.create(p, plan.robust)
-        out.breusch_pagan = BreuschPaganSums.create(p, plan.intercept)
+        out.breusch_pagan = BreuschPaganSums.create(p, plan.intercept, centred=plan.absorbed is not None)
         self.coders = [KeyCoder(c) for c in plan.cluster]
         self.pairs = PairCoder(f"{plan.cluster[0]}×{plan.cluster[1]}") if len(plan.cluster) == 2 else None
         out.clusters = [ClusterSums(c, p) for c in plan.cluster]
@@ -247,6 +256,8 @@ class PartSums:
         half = p // 2
         split = int(plan.cols[half - 1]) + 1 if half else 0
         lookup = plan.level_codes
+        absorbed = plan.absorbed
+        h0 = absorbed.inv_size[block.key_codes] if absorbed is not None else _NO_ROWS
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
         in_place = self._in_place
@@ -262,7 +273,9 @@ class PartSums:
             else:
                 np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
                 np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
-            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place)
+            if absorbed is not None:  # centred on the row's level, and its effect taken off e
+                gather_add(block.key_codes, a, absorbed.table, ZE)
+            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place, h0)
             W = ZE[:, :p]  # the scores (or the sandwich rows when in_place)
             sandwich.add_rows(W if in_place else V)
             for c, sums, g in zip(codes, out.clusters, groups):
@@ -345,4 +358,5 @@ class PartSums:
         if self.plan.diagnostics and self.out.feature_bins is None:
             self._start_bins()
         self.release()
+        self.out.rows_exact = self.out.dropped_by_column.get(ONE_ROW_LEVEL, 0)
         return self.out

@@ -153,9 +153,10 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
 
     def stream(i: int):
         sub, file_index = parts[i]
-        return iter(design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
-                                  extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w),
-                                  level_codes=plan.level_codes))
+        blocks = design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
+                               extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w),
+                               level_codes=plan.level_codes)
+        return iter(plan.absorbed.coded(blocks, sub) if plan.absorbed is not None else blocks)
 
     merged = OrderedMerge(lambda a, b: a.absorb(b))
     sample = _Sample(plan, len(parts))
@@ -214,11 +215,13 @@ def second_pass(
             "the second pass checks one model at a time; per-group models are not supported yet "
             "(fit the group of interest with --where instead of --by)"
         )
-    if model.spec.absorb:
+    absorbed = (model.coding or {}).get("absorbed") if model.spec.absorb else None
+    if model.spec.absorb and (model.spec.weights or not absorbed or "means" not in absorbed):
         raise DesignError(
-            f"robust errors and residual checks are not available for a model with an absorbed key "
-            f"({model.spec.absorb!r}) yet: its residuals need the level effects; fit without --absorb "
-            "to check the model"
+            f"robust errors and residual checks for a model with an absorbed key ({model.spec.absorb!r}) "
+            + ("are not available with weights yet; fit without --weights to check the model"
+               if model.spec.weights else
+               "need its levels' means, which this model file lacks; fit it again with this version")
         )
     cluster = list(dict.fromkeys(cluster))
     if len(cluster) > 2:
@@ -227,11 +230,13 @@ def second_pass(
     source = as_source(data)
     check_kind(robust)
     plan = PassPlan(model, cluster, keep, diagnostics, top_k, robust)
-    extra = list(dict.fromkeys(list(cluster) + list(keep)))
+    extra = list(dict.fromkeys(list(cluster) + list(keep) + ([model.spec.absorb] if absorbed else [])))
     parts = source_parts(source)
     if parts is not None:
         return _scan_parts(plan, parts, model.spec, model.coding, extra, batch_rows, progress, workers).finish()
     blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding,
                            level_codes=plan.level_codes)
+    if plan.absorbed is not None:
+        blocks = plan.absorbed.coded(blocks, source)
     with single_blas_thread():  # OpenBLAS threads beside the reader were 4-150x slower here
         return _scan(plan, source, blocks).finish()

@@ -11,7 +11,9 @@ VIF, as statsmodels' ``variance_inflation_factor`` computes it for a design with
 The condition number is that of the centred design with unit-length columns (R22 scaled by its
 column norms; uncentred when there is no intercept). Standardised estimates are β_j s_j / s_y:
 the change in the target, in its standard deviations, per standard deviation of the feature
-(needs the means, hence an intercept). Warning thresholds are common practice (no published
+(needs the means, hence an intercept). With an absorbed key the factor is that of the rows
+centred on their level's means, so the same formulas give the within-level VIFs (x_j on the other
+features and the levels) and standardised effects in within-level standard deviations. Warning thresholds are common practice (no published
 source): VIF above 10 and a scaled condition number above 30.
 """
 
@@ -47,22 +49,25 @@ class Collinearity:
         }
 
 
-def collinearity(Rk: np.ndarray, terms: list[str], beta: np.ndarray, intercept: bool, n: int) -> Collinearity:
-    """From the factor Rk of [X_kept | y] (kept terms in order, the intercept first when present)."""
+def collinearity(Rk: np.ndarray, terms: list[str], beta: np.ndarray, intercept: bool, n: int,
+                 within: bool = False) -> Collinearity:
+    """From the factor Rk of [X_kept | y] (kept terms in order, the intercept first when present;
+    ``within``: the factor of rows centred on an absorbed key's levels, centred already)."""
     p = Rk.shape[0] - 1
     first = 1 if intercept else 0
+    centred = intercept or within
     F = Rk[first:p, first:p]
     names = list(terms[first:p])
     if F.shape[0] == 0:
-        return Collinearity(names, np.zeros(0), np.zeros(0) if intercept else None, 1.0, intercept)
+        return Collinearity(names, np.zeros(0), np.zeros(0) if centred else None, 1.0, centred)
     col = np.linalg.norm(F, axis=0)
     inv = solve_triangular(F, np.eye(F.shape[0]))
     vif = np.einsum("ij,ij->i", inv, inv) * col**2
     s = np.linalg.svd(F / np.where(col > 0, col, 1.0), compute_uv=False)
     cond = float(s[0] / s[-1]) if s[-1] > 0 else float("inf")
     std = None
-    if intercept and n > 1:
-        sd_y = np.linalg.norm(Rk[1:, p])
+    if centred and n > 1:
+        sd_y = np.linalg.norm(Rk[first:, p])
         std = beta[first:p] * col / sd_y if sd_y > 0 else np.full(len(names), np.nan)
     warnings = []
     high = [f"{t} {v:.3g}" for t, v in zip(names, vif) if v > VIF_WARN]
@@ -76,4 +81,4 @@ def collinearity(Rk: np.ndarray, terms: list[str], beta: np.ndarray, intercept: 
             f"the standardised design has condition number {cond:.3g} (above {CONDITION_WARN:g}, common "
             "practice): nearly collinear features; consider dropping or combining some, or ridge"
         )
-    return Collinearity(names, vif, std, cond, intercept, warnings)
+    return Collinearity(names, vif, std, cond, centred, warnings)

@@ -67,6 +67,7 @@ def absorb_statistics(inf, absorbed: dict, G: int) -> None:
     within = inf.r_squared
     tss = float(absorbed["total_ss"])
     inf.tss = tss
+    inf.centered = True  # the levels' effects span the constant
     inf.r_squared = 1.0 - inf.rss / tss if tss > 0 else float("nan")
     inf.adj_r_squared = 1.0 - (1.0 - inf.r_squared) * (inf.n_used - 1) / inf.df_resid
     k = len(inf.estimate) + G

@@ -12,6 +12,13 @@ Two-way by keys A and B: V = V_A + V_B − V_{A∩B}, each term with its own fac
 Gelbach & Miller, JBES 29, 2011); when that is not positive semi-definite, its negative
 eigenvalues are set to zero as they propose (§2.3), and a note says so.
 
+With an absorbed key (G levels swept out) the sums are those of the rows centred on their levels
+(engine/absorbed_rows.py), which by Frisch–Waugh–Lovell give the slopes' block of the sandwich of
+the fit with one indicator per level; its k = p + G parameters enter HC1's n/(n − k), the cluster
+factor and the degrees of freedom, as statsmodels computes them for that fit. (When the clusters
+nest the levels, some authors leave G out of the cluster factor, e.g. Cameron & Miller 2015,
+§III.B, cited from memory; the explicit-dummy factor kept here is the larger, more cautious one.)
+
 Inference uses Student t with n − p degrees of freedom for HC0–HC3 and G − 1 for clusters
 (min(G_A, G_B) − 1 for two-way), the choices statsmodels makes with ``use_t=True`` and its
 default ``df_correction``.
@@ -158,27 +165,32 @@ def check_kind(kind: str | None) -> None:
         raise DesignError(f"unknown robust covariance {kind!r}: choose one of {', '.join(KINDS)} or all")
 
 
-def hc_covariance(R11: np.ndarray, sums: SandwichSums, kind: str) -> np.ndarray:
-    """HC0, HC1, HC2 or HC3 covariance of the coefficients."""
+def hc_covariance(R11: np.ndarray, sums: SandwichSums, kind: str, swept: int = 0) -> np.ndarray:
+    """HC0, HC1, HC2 or HC3 covariance of the coefficients (``swept``: levels of an absorbed key,
+    parameters too: HC1's factor is n/(n − p − swept))."""
     kind = kind.upper()
     check_kind(kind)
     n, p = sums.n, sums.p
     if kind in ("HC2", "HC3") and sums.max_leverage >= LEVERAGE_ONE:
         return np.full((p, p), np.nan)
     V = _sandwich(_bread(R11), sums.meat(kind))
-    return V * (n / (n - p)) if kind == "HC1" else V
+    return V * (n / (n - p - swept)) if kind == "HC1" else V
 
 
-def one_way_factor(groups: int, n: int, p: int) -> float:
-    """CRV1 small-sample factor G/(G − 1)·(n − 1)/(n − p)."""
-    return groups / (groups - 1.0) * (n - 1.0) / (n - p)
+def one_way_factor(groups: int, n: int, k: int) -> float:
+    """CRV1 small-sample factor G/(G − 1)·(n − 1)/(n − k), k parameters."""
+    return groups / (groups - 1.0) * (n - 1.0) / (n - k)
 
 
-def cluster_covariance(R11: np.ndarray, clusters: list[ClusterSums], n: int) -> tuple[np.ndarray, list[str]]:
-    """One-way (one ClusterSums) or two-way (A, B, A∩B) cluster-robust covariance, with notes."""
-    p = R11.shape[0]
+def cluster_covariance(R11: np.ndarray, clusters: list[ClusterSums], n: int,
+                       swept: int = 0) -> tuple[np.ndarray, list[str]]:
+    """One-way (one ClusterSums) or two-way (A, B, A∩B) cluster-robust covariance, with notes;
+    ``swept`` levels of an absorbed key count as parameters in the factor."""
+    p = R11.shape[0] + swept
     Rinv = _bread(R11)
     notes: list[str] = []
+    if n <= p:
+        raise DesignError(f"{n} rows for {p} parameters: clustered errors need more rows than parameters")
     for c in clusters:
         if c.groups < 2:
             raise DesignError(
@@ -239,12 +251,16 @@ def robust_results(
     *,
     selected: str | None,
     level: float,
+    swept: int = 0,
 ) -> dict[str, Any]:
-    """The ``robust`` value of a FitResult: the HC estimators the sums give, the clustered one if asked."""
+    """The ``robust`` value of a FitResult: the HC estimators the sums give, the clustered one if
+    asked. ``swept``: levels of an absorbed key, parameters besides the p coefficients (as in a fit
+    with one indicator column per level)."""
     n, p = sums.n, sums.p
-    if n <= p:
-        raise DesignError(f"{n} rows for {p} coefficients: robust errors need more rows than coefficients")
-    estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k), n - p, level) for k in sums.kinds}
+    if n <= p + swept:
+        raise DesignError(f"{n} rows for {p + swept} parameters: robust errors need more rows than parameters")
+    estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k, swept), n - p - swept, level)
+                  for k in sums.kinds}
     notes: list[str] = []
     if sums.max_leverage >= LEVERAGE_ONE and ({"HC2", "HC3"} & set(sums.kinds)):
         notes.append(
@@ -253,7 +269,7 @@ def robust_results(
         )
     info: dict[str, Any] = {}
     if clusters:
-        V, cnotes = cluster_covariance(R11, clusters, n)
+        V, cnotes = cluster_covariance(R11, clusters, n, swept)
         notes.extend(cnotes)
         key = "cluster:" + "+".join(c.name for c in clusters[:2])
         G = min(c.groups for c in clusters[:2])
@@ -285,7 +301,11 @@ def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], sel
     p = len(cols)
     R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
     beta = np.asarray(model.inference.estimate, dtype=float)
-    out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level)
+    swept = 0
+    if model.spec.absorb:  # the levels the pass used (one-row levels are left out: absorbed_rows.py)
+        swept = sum(1 for size in model.coding["absorbed"]["sizes"] if size >= 2)
+    out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level,
+                         swept=swept)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.asarray(out["estimators"][out["selected"]]["std_error"]) / model.inference.std_error
     out["terms"] = list(model.terms)

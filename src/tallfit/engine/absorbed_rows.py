@@ -1,0 +1,97 @@
+"""Rows of a model with an absorbed key in the second pass: each row's level, effect and centring.
+
+With a key swept out (accumulate/absorb.py) the model is yᵢ = α_g + xᵢᵀβ + eᵢ, and by
+Frisch–Waugh–Lovell its design is the rows centred on their level's means, x̃ᵢ = xᵢ − x̄_g. In the
+pass's coordinates zᵢ = R11⁻ᵀx̃ᵢ = R11⁻ᵀxᵢ − R11⁻ᵀx̄_g and eᵢ = yᵢ − xᵢᵀβ − α_g: one gathered row
+per data row, [−x̄_gᵀR11⁻¹ | −α_g], added to the tile's [Z | e] (kernels.gather_add) as for
+categorical levels. The hat matrix of the fit with one indicator per level is the levels'
+averaging plus that of the centred design, so the leverage is 1/n_g + ‖zᵢ‖², and the sandwich of
+the centred rows is the slopes' block of the explicit-dummy sandwich: HC0–HC3 and clustered errors
+equal that fit's, with k = p + (levels) in the small-sample factors.
+
+Rows the pass cannot use are left out and counted: a level the model never saw (its effect is
+unknown; only on other data) and a level of one row, which the fit matches exactly (eᵢ = 0,
+hᵢ = 1): such a row adds nothing to any sandwich and leaves n − k unchanged, since its level is one
+parameter less (the common practice of dropping singleton levels).
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pyarrow as pa
+
+from tallfit.design.categorical import level_seed, seeded_coder
+from tallfit.engine.local import span_label
+
+UNSEEN_LEVEL = "(level not in the model)"
+ONE_ROW_LEVEL = "(level of one row)"
+
+
+class AbsorbedRows:
+    """The model's level table for the pass, and each block's level codes (rows it cannot use left out)."""
+
+    def __init__(self, absorbed: dict, R11_inv: np.ndarray) -> None:
+        self.column = absorbed["column"]
+        self.levels = list(absorbed["effects"])
+        G, p = len(self.levels), R11_inv.shape[0]
+        alpha = np.fromiter(absorbed["effects"].values(), dtype=float, count=G)
+        sizes = np.asarray(absorbed["sizes"], dtype=float)
+        means = np.asarray(absorbed["means"], dtype=float).reshape(G, p)
+        self.alpha = alpha
+        self.inv_size = 1.0 / sizes
+        self.usable = sizes >= 2.0
+        self.swept = int(np.count_nonzero(self.usable))  # the levels k counts besides the p slopes
+        # rows 0, 1 for the codes −2 and −1 (never used here), as kernels.level_tables lays out
+        self.table = np.zeros((G + 2, p + 1), order="F")
+        self.table[2:, :p] = -(means @ R11_inv)
+        self.table[2:, p] = -alpha
+        self._seeds: dict[str, pa.Array | None] = {}
+        self._lock = threading.Lock()
+
+    def _seed(self, key_type: pa.DataType) -> pa.Array | None:
+        kind = "int" if pa.types.is_integer(key_type) and not pa.types.is_uint64(key_type) else "str"
+        with self._lock:
+            if kind not in self._seeds:
+                self._seeds[kind] = level_seed(self.levels, key_type)
+            return self._seeds[kind]
+
+    def coded(self, blocks, source):
+        """The blocks of one stream with ``key_codes`` set (the row's level id), the rows of unseen
+        and one-row levels left out and counted; one level coder per stream (no shared state)."""
+        coder = None
+        G = len(self.levels)
+        for block in blocks:
+            keys = block.extra[self.column]
+            if coder is None:
+                coder = seeded_coder(self.column, self._seed(keys.type))
+            where = span_label(source, block.file_index, block.row_start, block.n_read)
+            codes = coder.codes(keys, where)
+            known = (codes >= 0) & (codes < G)
+            ok = known.copy()
+            ok[known] = self.usable[codes[known]]
+            if not ok.all():
+                _leave_out(block, ok, {UNSEEN_LEVEL: int(np.count_nonzero(~known)),
+                                       ONE_ROW_LEVEL: int(np.count_nonzero(known & ~ok))})
+                codes = codes[ok]
+            block.key_codes = np.ascontiguousarray(codes, dtype=np.int64)
+            yield block
+
+
+def _leave_out(block, ok: np.ndarray, counts: dict[str, int]) -> None:
+    """Keep only the rows ``ok`` of a block's used rows; count the others by reason."""
+    idx = np.flatnonzero(ok)
+    used = np.flatnonzero(block.keep) if block.keep is not None else np.arange(block.A.shape[0])
+    keep = np.zeros(block.A.shape[0] if block.keep is None else block.keep.shape[0], dtype=bool)
+    keep[used[idx]] = True
+    block.keep = keep
+    block.A = np.asfortranarray(block.A[idx])
+    take = pa.array(idx)
+    block.extra = {k: v.take(take) for k, v in block.extra.items()}
+    if block.codes is not None:
+        block.codes = [c[idx] for c in block.codes]
+    block.col_min = block.col_max = None  # the ranges of rows no longer all here
+    for reason, n in counts.items():
+        if n:
+            block.dropped_by_column[reason] = block.dropped_by_column.get(reason, 0) + n
