@@ -236,6 +236,35 @@ def test_absorbed_key_equals_explicit_dummies():
     np.testing.assert_allclose(pred, res.fittedvalues, rtol=1e-9)
 
 
+def test_absorbed_model_intervals_equal_the_dummy_fit_and_unseen_levels_get_none(tmp_path):
+    """Mean-response and new-row intervals of an absorbed model on shifted rows equal statsmodels'
+    get_prediction(...).summary_frame of the fit with firm dummies (Var ŷ = σ²(1/n_g +
+    ‖R11⁻ᵀ(x − x̄_g)‖²)); rows of a firm the model never saw get a prediction and no interval."""
+    df, table = _grunfeld()
+    model = tallfit.fit(table, "invest", ["value", "capital"], absorb="firm")
+    firms = sorted(set(df.firm))
+    new = df.copy()
+    new["value"] = new["value"] * 1.3 + 50.0
+    X = np.column_stack([new.value, new.capital, _dummies(new.firm.to_numpy(), firms)])
+    ref = sm.OLS(df.invest.to_numpy(), np.column_stack([df.value, df.capital, _dummies(df.firm.to_numpy(), firms)]))
+    frame = ref.fit().get_prediction(X).summary_frame(alpha=0.05)
+    new_table = table.set_column(1, "value", pa.array(new.value.to_numpy()))
+    out = tallfit.predict(model, new_table, intervals=True)
+    for ours, theirs in (("ci_low", "mean_ci_lower"), ("ci_high", "mean_ci_upper"),
+                         ("pi_low", "obs_ci_lower"), ("pi_high", "obs_ci_upper")):
+        np.testing.assert_allclose(out[ours].to_numpy(), frame[theirs].to_numpy(), rtol=1e-9)
+    firm = table.column("firm").to_pylist()
+    firm[:3] = ["New Firm"] * 3
+    unseen = table.set_column(table.schema.get_field_index("firm"), "firm", pa.array(firm))
+    report = tallfit.predict(model, unseen, intervals=True, unseen="reference", out=tmp_path / "p.parquet")
+    assert report.rows_without_interval == 3 and report.rows_unseen_levels == 3
+    assert any("got no interval" in w for w in report.warnings())
+    got = pq.read_table(tmp_path / "p.parquet")
+    assert np.isnan(got["ci_low"].to_numpy()[:3]).all() and np.isfinite(got["prediction"].to_numpy()[:3]).all()
+    same = tallfit.predict(model, table, intervals=True)
+    np.testing.assert_array_equal(got["pi_high"].to_numpy()[3:], same["pi_high"].to_numpy()[3:])
+
+
 def test_rows_without_a_key_value_are_dropped_and_counted():
     """A null absorbed key belongs to no level: the row is dropped (counted under the key), and
     the fit equals statsmodels OLS with firm dummies on the other rows."""

@@ -21,6 +21,7 @@ import pyarrow.compute as pc
 from tallfit.atomic import atomic_path, check_writable
 from tallfit.diagnostics.kernels import gather_add, level_tables
 from tallfit.design.design import Design, check_design_columns, prediction_columns
+from tallfit.engine.absorbed_rows import AbsorbedRows
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, chunk_label
 from tallfit.engine.prefetch import prefetched
 from tallfit.errors import ColumnNotFoundError, DesignError, OutputError
@@ -38,6 +39,7 @@ class PredictionReport:
     rows_missing_features: int = 0
     rows_outside_training_range: int = 0
     rows_unseen_levels: int = 0
+    rows_without_interval: int = 0  # rows of an absorbed level the model never saw, with intervals
     rows_without_group_model: int = 0
     out: str | None = None
     columns: list[str] = field(default_factory=list)
@@ -55,6 +57,12 @@ class PredictionReport:
             w.append(
                 f"{self.rows_unseen_levels} rows had a categorical level the model never saw and were "
                 "scored as the level the unseen-level policy names"
+            )
+        if self.rows_without_interval:
+            w.append(
+                f"{self.rows_without_interval} rows of absorbed levels the model never saw got no "
+                "interval (null): the uncertainty of an unknown level's effect includes the spread "
+                "between levels, which the model does not estimate"
             )
         if self.rows_outside_training_range:
             w.append(
@@ -93,10 +101,10 @@ class _Scorer:
                 f"intervals need standard errors, which this model ({model.solver}) does not have; "
                 "predict without intervals, or use an exact least-squares model"
             )
-        if self.absorbed and intervals:
+        if self.absorbed and intervals and "means" not in self.absorbed:
             raise DesignError(
-                "intervals are not available for a model with an absorbed key (the level effects' "
-                "uncertainty is not kept); predict without intervals"
+                "intervals for a model with an absorbed key need its levels' means, which this model "
+                "file lacks; fit it again with this version, or predict without intervals"
             )
         self.n_features = len(spec.features)
         if intervals:
@@ -108,6 +116,12 @@ class _Scorer:
             full[self.keep] = upper_inverse(R11)
             self.z_dense = np.asfortranarray(full[: self.dense])
             self.z_levels = level_tables(full, self.dense, widths)
+            # an absorbed key: ŷ = α_g + xᵀβ has variance σ²(1/n_g + ‖R11⁻ᵀ(x − x̄_g)‖²), the
+            # leverage of the fit with one indicator per level (engine/absorbed_rows.py)
+            self.z_absorbed = None
+            if self.absorbed:
+                rows = AbsorbedRows(self.absorbed, upper_inverse(R11))
+                self.z_absorbed = (np.asfortranarray(rows.table[:, :p]), rows.inv_size)
             self.s = model.inference.residual_std
             self.q = float(t_ppf(0.5 + level / 2.0, model.inference.df_resid))
 
@@ -119,8 +133,10 @@ class _Scorer:
         pred = X @ self.beta_full[: self.dense]  # no copy of the kept columns: the others have weight 0
         for lut, c in zip(self.level_effects, codes):
             pred += lut[c + 2]  # reference level and nulls (codes −1, −2): 0
+        key_codes = None
         if self.absorbed:
-            pred += self._effects(batch.column(self.absorbed["column"]), report, label)
+            effects, key_codes = self._effects(batch.column(self.absorbed["column"]), report, label)
+            pred += effects
         pred[~ok] = np.nan
         report.rows += len(pred)
         report.rows_missing_features += int(np.count_nonzero(~ok))
@@ -136,7 +152,10 @@ class _Scorer:
             np.matmul(X, self.z_dense, out=Z)
             for T, c in zip(self.z_levels, codes):
                 gather_add(c, 0, T, Z)
-            se_fit = self.s * np.sqrt(np.einsum("ij,ij->i", Z, Z))  # rows with a missing feature: NaN
+            h = np.einsum("ij,ij->i", Z, Z)
+            if self.z_absorbed is not None:
+                h = self._absorbed_leverage(Z, key_codes, ok, report)
+            se_fit = self.s * np.sqrt(h)  # rows with a missing feature (or an unseen level): NaN
             se_new = np.sqrt(self.s**2 + se_fit**2)
             cols["ci_low"] = pred - self.q * se_fit
             cols["ci_high"] = pred + self.q * se_fit
@@ -145,8 +164,21 @@ class _Scorer:
         return cols
 
 
-    def _effects(self, keys, report: PredictionReport, label: str) -> np.ndarray:
-        """Absorbed level effect per row; unseen levels per the policy (mean effect if allowed).
+    def _absorbed_leverage(self, Z, key_codes, ok, report: PredictionReport) -> np.ndarray:
+        """1/n_g + ‖zᵢ − u_g‖² per row (u_g = R11⁻ᵀx̄_g, the level table's rows); NaN for rows of
+        unseen levels."""
+        table, inv_size = self.z_absorbed
+        known = (key_codes >= 0) & (key_codes < inv_size.shape[0])
+        gather_add(np.where(known, key_codes, -2), 0, table, Z)  # code −2: the table's zero row
+        h = np.einsum("ij,ij->i", Z, Z)
+        h[known] += inv_size[key_codes[known]]
+        h[~known] = np.nan
+        report.rows_without_interval += int(np.count_nonzero(~known & ok))
+        return h
+
+    def _effects(self, keys, report: PredictionReport, label: str) -> tuple[np.ndarray, np.ndarray]:
+        """Absorbed level effect and level id per row; unseen levels per the policy (mean effect if
+        allowed; their id is the model's level count or more).
         Rows find their level through a discovering level coder seeded with the model's levels in
         order (ids below their count are known levels): hashing per distinct label, not per row."""
         from tallfit.design.categorical import level_seed, level_strings, seeded_coder
@@ -173,7 +205,7 @@ class _Scorer:
                 )
             report.rows_unseen_levels += int(np.count_nonzero(~known))
             out[~known] = self.absorbed["mean_effect"]
-        return out
+        return out, codes
 
 
 class _GroupScorer:
