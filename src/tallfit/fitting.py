@@ -82,7 +82,8 @@ def attach_effects(result: FitResult, absorber, T, absorbed: dict) -> None:
         # per level, in the order of "effects": its rows (weight sum when weighted) and its means
         # of the terms, which the second pass centres rows on (leverage 1/n_g + ‖zᵢ‖²)
         "sizes": counts[used].tolist(),
-        "means": np.ascontiguousarray(means[used]),  # levels × terms (packed in model files)
+        # levels × terms (packed in model files); no copy when every level id is used, in order
+        "means": means if np.array_equal(used, np.arange(means.shape[0])) else means[used],
     }
     result.coding = coding
 

@@ -270,11 +270,27 @@ class AbsorbAccumulator:
         means (10^5 × 64 is 51 MB)."""
         G = self.coder.n_columns
         k = self.W.k
-        out = self.means[:G, :-1] @ c[: k - 1] + self.means[:G, -1:] @ c[-1:]
+        # one BLAS product on a contiguous copy: numpy's own loop for the strided view of the
+        # level state measured 0.25 s at 10^5 levels × 62 terms
+        out = np.ascontiguousarray(self.means[:G]) @ np.concatenate([c[: k - 1], c[-1:]])
         if self.coders:
             pos = (k - 1) + self._indicator_positions()
             Wt = np.where(self.counts[:G] > 0, self.counts[:G], 1.0)
-            out += (self.key_level[:G, : len(self.members)] @ c[pos]) / (Wt if c.ndim == 1 else Wt[:, None])
+            K = self.key_level[:G, : len(self.members)]
+            C = c[pos]
+            nz = C != 0
+            if C.ndim == 2 and (nz.sum(axis=0) <= 1).all() and (C[nz] == 1.0).all():
+                # a coding's columns that each pick one level (no merges): a column gather, not a
+                # product (10^5 levels × 58 indicators × 62 terms measured 0.1 s as a product)
+                cols = np.flatnonzero(nz.any(axis=0))
+                shares = K[:, np.argmax(nz[:, cols], axis=0)]
+                shares /= Wt[:, None]
+                if cols.size and cols[-1] - cols[0] == cols.size - 1:  # one run of terms: no temporaries
+                    out[:, cols[0]: cols[-1] + 1] += shares
+                else:
+                    out[:, cols] += shares
+            else:
+                out += (K @ C) / (Wt if c.ndim == 1 else Wt[:, None])
         return out
 
     def levels(self) -> list[str]:
