@@ -47,29 +47,33 @@ class PredictionReport:
     def warnings(self) -> list[str]:
         w = []
         if self.rows_missing_features:
-            w.append(f"{self.rows_missing_features} rows had a missing feature and got a null prediction")
+            w.append(f"{_rows(self.rows_missing_features)} had a missing feature and got a null prediction")
         if self.rows_without_group_model:
             w.append(
-                f"{self.rows_without_group_model} rows belong to groups with no fitted model (unseen or "
-                "not fitted) and got a null prediction"
+                f"{_rows(self.rows_without_group_model)} of groups with no fitted model (unseen or not "
+                "fitted) got a null prediction"
             )
         if self.rows_unseen_levels:
             w.append(
-                f"{self.rows_unseen_levels} rows had a categorical level the model never saw and were "
-                "scored as the level the unseen-level policy names"
+                f"{_rows(self.rows_unseen_levels)} had a categorical level the model never saw and got "
+                "the score of the level the unseen-level policy names"
             )
         if self.rows_without_interval:
             w.append(
-                f"{self.rows_without_interval} rows of absorbed levels the model never saw got no "
+                f"{_rows(self.rows_without_interval)} of absorbed levels the model never saw got no "
                 "interval (null): the uncertainty of an unknown level's effect includes the spread "
                 "between levels, which the model does not estimate"
             )
         if self.rows_outside_training_range:
             w.append(
-                f"{self.rows_outside_training_range} rows lie outside the range of the fitted data in at "
-                "least one feature: those predictions extrapolate the straight-line model"
+                f"{_rows(self.rows_outside_training_range)} fell outside the range of the fitted data in "
+                "at least one feature: those predictions extrapolate the straight-line model"
             )
         return w
+
+
+def _rows(n: int) -> str:
+    return "1 row" if n == 1 else f"{n:,} rows"
 
 
 class _Scorer:
