@@ -292,9 +292,25 @@ def robust_results(
     }
 
 
+def robust_refusal(model) -> str | None:
+    """Why a model's robust errors cannot be computed from the second pass, or None."""
+    spec = getattr(model, "spec", None)
+    if spec is not None and spec.weights and spec.weight_kind == "frequency":
+        return (
+            "robust and clustered errors with frequency weights are not available yet: a row of "
+            "weight w stands for w rows, whose leverages and count the second pass does not expand; "
+            "use analytic weights (--weight-kind analytic) or expand the rows"
+        )
+    return None
+
+
 def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], selected: str | None) -> dict[str, Any]:
     """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors."""
     from tallfit.solve.exact import reduce_factor
+
+    refusal = robust_refusal(model)
+    if refusal:
+        raise DesignError(refusal)
 
     names = model.accumulator.names[:-1]  # the fitted design's columns, categorical indicators included
     cols = [names.index(t) for t in model.terms]
