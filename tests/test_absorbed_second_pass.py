@@ -213,8 +213,35 @@ def test_within_level_vif_and_centred_r_squared(grunfeld):
     _close(col.vif, [variance_inflation_factor(Xc, j) for j in (1, 2)])
 
 
-def test_weighted_absorbed_model_is_refused_with_a_reason(grunfeld):
+@pytest.mark.parametrize("kind", ["HC0", "HC1", "HC3", "cluster"])
+def test_analytic_weights_equal_wls_with_dummies(grunfeld, kind):
+    """Rows weighted by 1/√value (analytic): robust and firm-clustered errors equal statsmodels
+    WLS with firm dummies (its whitened rows: leverage wᵢ/W_g + ‖zᵢ‖²)."""
     df, table = grunfeld
-    table = table.append_column("w", pa.array(np.linspace(1, 2, len(df))))
-    with pytest.raises(DesignError, match="not available with weights"):
-        tallfit.fit(table, "invest", FEATURES, absorb="firm", weights="w", robust="HC1")
+    w = 1.0 / np.sqrt(df.value.to_numpy(float))
+    table = table.append_column("w", pa.array(w))
+    opts = {"cluster": "firm"} if kind == "cluster" else {"robust": kind}
+    model = tallfit.fit(table, "invest", FEATURES, absorb="firm", weights="w", batch_rows=23, **opts)
+    _, X = _dummy_fit(df)
+    wls = sm.WLS(df.invest.to_numpy(float), X, weights=w)
+    if kind == "cluster":
+        ref = wls.fit(cov_type="cluster", cov_kwds={"groups": df.firm.factorize()[0]})
+        est = model.robust["estimators"]["cluster:firm"]
+    else:
+        ref = wls.fit(cov_type=kind)
+        est = model.robust["estimators"][kind]
+    _close(model.inference.estimate, ref.params[:2])
+    _close(est["std_error"], ref.bse[:2])
+
+
+def test_weighted_absorbed_report_bins_the_data_units(grunfeld):
+    """The residual checks of a weighted model bin the features in their own units: every row,
+    with Σx per feature equal to the data's."""
+    df, table = grunfeld
+    table = table.append_column("w", pa.array(np.linspace(0.5, 2.0, len(df))))
+    model = tallfit.fit(table, "invest", FEATURES, absorb="firm", weights="w")
+    sp = second_pass(model, table, robust="HC1")
+    for j, f in enumerate(FEATURES):
+        sums = sp.feature_bins.sums[j]
+        assert sums[:, 0].sum() == len(df)
+        _close(sums[:, 1].sum(), df[f].sum())

@@ -193,3 +193,22 @@ def test_other_data_is_reported_not_mixed_with_robust_errors():
     assert found["diagnostics"]["breusch_pagan"] is None
     assert found["model"].robust is None
     assert any("not the rows the model was fitted on" in a for a in found["diagnostics"]["advice"])
+
+
+def test_weighted_model_without_intercept_bins_rows_in_their_own_units():
+    """Weighted rows arrive scaled by √w; the binned checks divide by it again (the blocks carry
+    w), so a weighted fit without an intercept gets its residual checks too (ccard, statsmodels'
+    copy of Greene's credit-card data, weights 1/INCOME): counts and Σx per feature are the data's,
+    Σe² is that of the Pearson residuals √w·e of statsmodels' WLS."""
+    d = sm.datasets.ccard.load_pandas().data
+    w = 1.0 / d.INCOME.to_numpy(float)
+    table = pa.table({c: d[c].to_numpy(float) for c in ["AVGEXP", "AGE", "INCOME"]}).append_column("w", pa.array(w))
+    model = tallfit.fit(table, "AVGEXP", ["AGE", "INCOME"], weights="w", intercept=False)
+    sp = second_pass(model, table)
+    ref = sm.WLS(d.AVGEXP.to_numpy(float), d[["AGE", "INCOME"]].to_numpy(float), weights=w).fit()
+    for j, f in enumerate(["AGE", "INCOME"]):
+        sums = sp.feature_bins.sums[j]
+        assert sums[:, 0].sum() == len(d)
+        np.testing.assert_allclose(sums[:, 1].sum(), d[f].sum(), rtol=1e-12)
+        np.testing.assert_allclose(sums[:, 3].sum(), np.sum(ref.wresid**2), rtol=1e-9)
+    assert len(build_diagnostics(model, sp)["features"]) == 2

@@ -236,7 +236,7 @@ def diagnose(
     sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep), robust=robust,
                      batch_rows=batch_rows, progress=progress)
     if same_data(model, sp) and not robust_refusal(model):  # else the report says why there are none
-        model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust)
+        model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
     diag = build_diagnostics(model, sp, bins=bins, robust=model.robust)
     if robust_refusal(model):
         diag["advice"].append(robust_refusal(model))

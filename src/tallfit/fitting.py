@@ -30,7 +30,7 @@ def with_robust(result: FitResult, source, robust, cluster, batch_rows, progress
         raise DesignError(robust_refusal(result))
     sp = second_pass(result, source, cluster=cluster_list(cluster), robust=robust, diagnostics=False,
                      batch_rows=batch_rows, progress=progress)
-    result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust)
+    result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
     return result
 
 

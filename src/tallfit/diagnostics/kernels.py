@@ -11,7 +11,8 @@
 * ``square_moments``: mean and centred sum of squares of e² (one block, two sweeps).
 * ``grid_index``: the grid cell of each value of one column (fitted values, residuals).
 * ``scatter_rows``: S[code[i], :] += W[i, :] (cluster score sums).
-* ``gather_add``: W[i, :] += T[code[i], :] (the indicator columns' rows of the tile map).
+* ``gather_add``: W[i, :] += T[code[i], :] (the indicator columns' rows of the tile map), and
+  ``gather_add_scaled`` with a factor per row (an absorbed level's row, for rows scaled by √w).
 * ``grid_counts``: a 2-D histogram of two cell indices (fitted value × residual).
 * ``residual_moments``: Σ|e|, Σe², Σe³, Σe⁴, min, max and a histogram on a fixed grid.
 
@@ -111,6 +112,19 @@ def gather_add(codes, r0, T, W):  # pragma: no cover - compiled
         t = T[:, j]
         for i in range(m):
             w[i] += t[c[i] + 2]
+
+
+@numba.njit(cache=True, nogil=True)
+def gather_add_scaled(codes, r0, T, W, scale):  # pragma: no cover - compiled
+    """W[i, :] += scale[r0 + i] · T[codes[r0 + i] + 2, :] (``gather_add`` for rows scaled by √w)."""
+    m, q = W.shape
+    c = codes[r0 : r0 + m]
+    f = scale[r0 : r0 + m]
+    for j in range(q):
+        w = W[:, j]
+        t = T[:, j]
+        for i in range(m):
+            w[i] += f[i] * t[c[i] + 2]
 
 
 @numba.njit(cache=True, nogil=True)

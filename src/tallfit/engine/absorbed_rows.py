@@ -5,14 +5,15 @@ Frisch–Waugh–Lovell its design is the rows centred on their level's means, x
 pass's coordinates zᵢ = R11⁻ᵀx̃ᵢ = R11⁻ᵀxᵢ − R11⁻ᵀx̄_g and eᵢ = yᵢ − xᵢᵀβ − α_g: one gathered row
 per data row, [−x̄_gᵀR11⁻¹ | −α_g], added to the tile's [Z | e] (kernels.gather_add) as for
 categorical levels. The hat matrix of the fit with one indicator per level is the levels'
-averaging plus that of the centred design, so the leverage is 1/n_g + ‖zᵢ‖², and the sandwich of
-the centred rows is the slopes' block of the explicit-dummy sandwich: HC0–HC3 and clustered errors
-equal that fit's, with k = p + (levels) in the small-sample factors.
+averaging plus that of the centred design, so the leverage is 1/n_g + ‖zᵢ‖² (wᵢ/W_g + ‖zᵢ‖² for
+analytic weights, whose rows arrive scaled by √wᵢ and get their level's row scaled alike), and the
+sandwich of the centred rows is the slopes' block of the explicit-dummy sandwich: HC0–HC3 and
+clustered errors equal that fit's, with k = p + (levels) in the small-sample factors.
 
 Rows the pass cannot use are left out and counted: a level the model never saw (its effect is
 unknown; only on other data) and a level of one row, which the fit matches exactly (eᵢ = 0,
-hᵢ = 1): such a row adds nothing to any sandwich and leaves n − k unchanged, since its level is one
-parameter less (the common practice of dropping singleton levels).
+hᵢ = 1, found as wᵢ/W_g = 1): such a row adds nothing to any sandwich and leaves n − k unchanged,
+since its level is one parameter less (the common practice of dropping singleton levels).
 """
 
 from __future__ import annotations
@@ -27,6 +28,7 @@ from tallfit.engine.local import span_label
 
 UNSEEN_LEVEL = "(level not in the model)"
 ONE_ROW_LEVEL = "(level of one row)"
+ALONE = 1.0 - 1e-9  # a row's share wᵢ/W_g of its level from which it is the level's only row
 
 
 class AbsorbedRows:
@@ -37,12 +39,10 @@ class AbsorbedRows:
         self.levels = list(absorbed["effects"])
         G, p = len(self.levels), R11_inv.shape[0]
         alpha = np.fromiter(absorbed["effects"].values(), dtype=float, count=G)
-        sizes = np.asarray(absorbed["sizes"], dtype=float)
+        sizes = np.asarray(absorbed["sizes"], dtype=float)  # rows, or weight sums when weighted
         means = np.asarray(absorbed["means"], dtype=float).reshape(G, p)
         self.alpha = alpha
         self.inv_size = 1.0 / sizes
-        self.usable = sizes >= 2.0
-        self.swept = int(np.count_nonzero(self.usable))  # the levels k counts besides the p slopes
         # rows 0, 1 for the codes −2 and −1 (never used here), as kernels.level_tables lays out
         self.table = np.zeros((G + 2, p + 1), order="F")
         self.table[2:, :p] = -(means @ R11_inv)
@@ -58,8 +58,9 @@ class AbsorbedRows:
             return self._seeds[kind]
 
     def coded(self, blocks, source):
-        """The blocks of one stream with ``key_codes`` set (the row's level id), the rows of unseen
-        and one-row levels left out and counted; one level coder per stream (no shared state)."""
+        """The blocks of one stream with ``key_codes`` (the row's level id) and ``key_share``
+        (wᵢ/W_g, its leverage from the level) set, the rows of unseen and one-row levels left out
+        and counted; one level coder per stream (no shared state)."""
         coder = None
         G = len(self.levels)
         for block in blocks:
@@ -69,13 +70,17 @@ class AbsorbedRows:
             where = span_label(source, block.file_index, block.row_start, block.n_read)
             codes = coder.codes(keys, where)
             known = (codes >= 0) & (codes < G)
-            ok = known.copy()
-            ok[known] = self.usable[codes[known]]
+            share = np.zeros(len(codes))
+            share[known] = self.inv_size[codes[known]]
+            if block.row_weights is not None:
+                share *= block.row_weights
+            ok = known & (share < ALONE)
             if not ok.all():
                 _leave_out(block, ok, {UNSEEN_LEVEL: int(np.count_nonzero(~known)),
                                        ONE_ROW_LEVEL: int(np.count_nonzero(known & ~ok))})
-                codes = codes[ok]
+                codes, share = codes[ok], share[ok]
             block.key_codes = np.ascontiguousarray(codes, dtype=np.int64)
+            block.key_share = share
             yield block
 
 
@@ -91,6 +96,8 @@ def _leave_out(block, ok: np.ndarray, counts: dict[str, int]) -> None:
     block.extra = {k: v.take(take) for k, v in block.extra.items()}
     if block.codes is not None:
         block.codes = [c[idx] for c in block.codes]
+    if block.row_weights is not None:
+        block.row_weights = block.row_weights[idx]
     block.col_min = block.col_max = None  # the ranges of rows no longer all here
     for reason, n in counts.items():
         if n:

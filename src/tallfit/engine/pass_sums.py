@@ -23,8 +23,8 @@ import pyarrow as pa
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
-from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, grid_counts, grid_index, level_tables,
-                                         tile_scores)
+from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, gather_add_scaled, grid_counts, grid_index,
+                                         level_tables, tile_scores)
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.absorbed_rows import ONE_ROW_LEVEL, AbsorbedRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
@@ -59,6 +59,12 @@ class SecondPass:
     top_residuals: TopRows | None = None
     top_leverage: TopRows | None = None
     rows_exact: int = 0  # rows of one-row absorbed levels: fitted exactly, left out (absorbed_rows.py)
+    levels_used: int = 0  # absorbed levels with a row in the pass: parameters besides the terms
+
+
+def unscaled(block) -> np.ndarray:
+    """A weighted block's rows back in the data's units (they arrive scaled by √w)."""
+    return block.A / np.sqrt(block.row_weights)[:, None]
 
 
 def tile_map(R11_inv: np.ndarray, cols: np.ndarray, beta: np.ndarray, width: int) -> np.ndarray:
@@ -95,8 +101,8 @@ class PassPlan:
         self.robust = robust
         self._maps: dict[int, np.ndarray] = {}
         coding = model.coding or {}
-        # an absorbed key: each row's level adds its row [−x̄_gᵀR11⁻¹ | −α_g] to [Z | e] by a gather,
-        # and 1/n_g to the leverage (engine/absorbed_rows.py)
+        # an absorbed key: each row's level adds its row [−x̄_gᵀR11⁻¹ | −α_g] (times √wᵢ when
+        # weighted) to [Z | e] by a gather, and wᵢ/W_g to the leverage (engine/absorbed_rows.py)
         self.absorbed = AbsorbedRows(coding["absorbed"], self.R11_inv) if spec.absorb else None
         # categoricals (unweighted): blocks come without indicator columns (level codes instead);
         # [Z | e] is then the product of the dense columns with their rows of the tile map plus,
@@ -115,9 +121,9 @@ class PassPlan:
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
         self.intercept = bool(spec.has_intercept_column and names[0] in model.terms)
         # weighted rows arrive scaled by √w: residuals are then √w·e (the sandwich wants exactly
-        # that); binned summaries need the unscaled values, which only an intercept column gives
+        # that); binned summaries divide the rows by √w again (the blocks carry each row's w)
         self.weighted = bool(getattr(spec, "weights", None))
-        self.diagnostics = diagnostics and not (self.weighted and not self.intercept)
+        self.diagnostics = diagnostics
         self.cluster, self.keep, self.top_k = list(cluster), list(keep), top_k
         s = model.inference.residual_std
         self.s = ResidualSketch(s).scale_sd if self.diagnostics else s
@@ -161,7 +167,7 @@ class PassPlan:
             fit = np.empty((F.shape[0], 1))
             r = 0
             for b in held:
-                a = b.A / b.A[:, :1] if self.weighted else b.A
+                a = unscaled(b) if self.weighted else b.A
                 rows = slice(r, r + a.shape[0])
                 for j, c in enumerate(self.fcols):
                     F[rows, j] = a[:, c]
@@ -194,6 +200,7 @@ class PartSums:
             out.top_residuals = TopRows(plan.top_k, "absolute residual")
             out.top_leverage = TopRows(plan.top_k, "leverage")
         self._tiles: dict[int, tuple] = {}
+        self._levels = np.zeros(len(plan.absorbed.levels) if plan.absorbed is not None else 0, dtype=bool)
         self._vec: tuple | None = None
         # the sandwich rows take the scores' place in the tile unless cluster sums need the scores
         # too (HC2/HC3) or they are 2p wide ("all"); V is then not used
@@ -257,7 +264,10 @@ class PartSums:
         split = int(plan.cols[half - 1]) + 1 if half else 0
         lookup = plan.level_codes
         absorbed = plan.absorbed
-        h0 = absorbed.inv_size[block.key_codes] if absorbed is not None else _NO_ROWS
+        h0 = block.key_share if absorbed is not None else _NO_ROWS
+        if absorbed is not None:
+            self._levels[block.key_codes] = True
+        root_w = np.sqrt(block.row_weights) if absorbed is not None and plan.weighted else None
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
         in_place = self._in_place
@@ -273,7 +283,9 @@ class PartSums:
             else:
                 np.matmul(A[a:b, :split], M[:split, :half], out=ZE[:, :half])
                 np.matmul(A[a:b], M[:, half:], out=ZE[:, half:])
-            if absorbed is not None:  # centred on the row's level, and its effect taken off e
+            if root_w is not None:  # centred on the row's level, and its effect taken off e
+                gather_add_scaled(block.key_codes, a, absorbed.table, ZE, root_w)
+            elif absorbed is not None:
                 gather_add(block.key_codes, a, absorbed.table, ZE)
             tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place, h0)
             W = ZE[:, :p]  # the scores (or the sandwich rows when in_place)
@@ -295,8 +307,8 @@ class PartSums:
     def _diagnose(self, block, A, e, fitted, h, ka, kb) -> None:
         out, plan = self.out, self.plan
         if plan.weighted:  # back to the data's own units; e stays √w·e (a Pearson residual)
-            A = A / A[:, :1]
-            fitted = A[:, plan.cols] @ plan.beta
+            A = unscaled(block)
+            fitted = plan.fitted_values(block, A)
             out.feature_bins.update(A, e, plan.fcols, ka)
         out.fitted_bins.update(fitted[:, None], e, None, ka)
         ax = out.heat_axes
@@ -333,6 +345,7 @@ class PartSums:
         for k, v in b.dropped_by_column.items():
             a.dropped_by_column[k] = a.dropped_by_column.get(k, 0) + v
         a.sandwich = a.sandwich.merge(b.sandwich)
+        self._levels |= other._levels
         a.breusch_pagan = a.breusch_pagan.merge(b.breusch_pagan)
         luts = [mine.absorb(theirs) for mine, theirs in zip(self.coders, other.coders)]
         for sums, theirs, lut, coder in zip(a.clusters, b.clusters, luts, self.coders):
@@ -359,4 +372,5 @@ class PartSums:
             self._start_bins()
         self.release()
         self.out.rows_exact = self.out.dropped_by_column.get(ONE_ROW_LEVEL, 0)
+        self.out.levels_used = int(np.count_nonzero(self._levels))
         return self.out

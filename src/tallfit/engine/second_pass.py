@@ -216,12 +216,10 @@ def second_pass(
             "(fit the group of interest with --where instead of --by)"
         )
     absorbed = (model.coding or {}).get("absorbed") if model.spec.absorb else None
-    if model.spec.absorb and (model.spec.weights or not absorbed or "means" not in absorbed):
+    if model.spec.absorb and (not absorbed or "means" not in absorbed):
         raise DesignError(
             f"robust errors and residual checks for a model with an absorbed key ({model.spec.absorb!r}) "
-            + ("are not available with weights yet; fit without --weights to check the model"
-               if model.spec.weights else
-               "need its levels' means, which this model file lacks; fit it again with this version")
+            "need its levels' means, which this model file lacks; fit it again with this version"
         )
     cluster = list(dict.fromkeys(cluster))
     if len(cluster) > 2:

@@ -304,8 +304,10 @@ def robust_refusal(model) -> str | None:
     return None
 
 
-def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], selected: str | None) -> dict[str, Any]:
-    """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors."""
+def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], selected: str | None,
+                     swept: int = 0) -> dict[str, Any]:
+    """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors
+    (``swept``: the absorbed levels the pass used, SecondPass.levels_used)."""
     from tallfit.solve.exact import reduce_factor
 
     refusal = robust_refusal(model)
@@ -317,9 +319,6 @@ def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], sel
     p = len(cols)
     R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
     beta = np.asarray(model.inference.estimate, dtype=float)
-    swept = 0
-    if model.spec.absorb:  # the levels the pass used (one-row levels are left out: absorbed_rows.py)
-        swept = sum(1 for size in model.coding["absorbed"]["sizes"] if size >= 2)
     out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level,
                          swept=swept)
     with np.errstate(divide="ignore", invalid="ignore"):
