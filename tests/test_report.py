@@ -134,3 +134,26 @@ def test_fit_cli_robust_option(fleet, capsys):
                  "--robust", "hc3", "--no-progress"]) == 0
     out = capsys.readouterr().out
     assert "HC3 errors beside the plain ones" in out
+
+
+def test_report_of_an_absorbed_model_from_its_file(fleet, capsys):
+    """fit --absorb host_id, saved and loaded back (level means packed in the file), then report:
+    host-clustered errors, the binned checks (which still find the bend in inlet_temp_c) and
+    every image decoding; the plain summary calls its R² centred (the levels span the constant)."""
+    folder, data, _ = fleet
+    model = folder / "absorbed.json"
+    assert main(["fit", str(data), "--target", "power_w", "--features", "cpu_util,inlet_temp_c",
+                 "--absorb", "host_id", "--robust", "HC3", "--out", str(model), "--no-progress"]) == 0
+    printed = capsys.readouterr().out
+    assert "HC3" in printed and "uncentred" not in printed
+    out = folder / "absorbed.html"
+    assert main(["report", str(model), str(data), "--out", str(out), "--cluster", "host_id",
+                 "--no-progress"]) == 0
+    assert "inlet_temp_c: the straight line misses a bend" in capsys.readouterr().out
+    parser = _Collect()
+    parser.feed(out.read_text(encoding="utf-8"))
+    assert len(parser.imgs) == 6
+    for img in parser.imgs:
+        with PIL.open(io.BytesIO(base64.b64decode(img["src"].split(",", 1)[1]))) as im:
+            im.verify()
+    assert "cluster:host_id" in out.read_text(encoding="utf-8")
