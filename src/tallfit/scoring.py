@@ -156,9 +156,10 @@ class _Scorer:
             np.matmul(X, self.z_dense, out=Z)
             for T, c in zip(self.z_levels, codes):
                 gather_add(c, 0, T, Z)
-            h = np.einsum("ij,ij->i", Z, Z)
             if self.z_absorbed is not None:
                 h = self._absorbed_leverage(Z, key_codes, ok, report)
+            else:
+                h = np.einsum("ij,ij->i", Z, Z)
             se_fit = self.s * np.sqrt(h)  # rows with a missing feature (or an unseen level): NaN
             se_new = np.sqrt(self.s**2 + se_fit**2)
             cols["ci_low"] = pred - self.q * se_fit

@@ -8,8 +8,8 @@ the Breusch–Pagan sums, and one cross product (kernels.products) the sandwich 
 HC estimator (or of all four); cluster score sums for one key or two (and their pairs); binned residual sums per
 feature; then per block the fitted-value bins, a fitted × residual histogram, the residual sketch
 (MAE, quantiles) and the rows with the largest residuals and leverages, with their pass-through
-id columns. With an absorbed key, each row's level adds its row of the level table to [Z | e] and
-1/n_g to the leverage (engine/absorbed_rows.py).
+id columns. With an absorbed key, each row's level adds its row of the level table to [Z | e]
+(scaled by √wᵢ when weighted) and wᵢ/W_g to the leverage (engine/absorbed_rows.py).
 """
 
 from __future__ import annotations
