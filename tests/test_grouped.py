@@ -84,3 +84,65 @@ def test_too_many_groups_is_a_clear_error(fleet):
     spec = make_spec("power", ["cpu"], by=["region"])
     with pytest.raises(DesignError, match="coarser"):
         fit_groups(as_source(fleet), spec, 100, None, Design(spec), lambda acc: None, budget=10)
+
+
+def _grunfeld_eras():
+    d = sm.datasets.grunfeld.load_pandas().data
+    d["era"] = np.where(d.year < 1945, "early", "late")
+    table = pa.table({"invest": d.invest.to_numpy(float), "value": d.value.to_numpy(float),
+                      "capital": d.capital.to_numpy(float), "firm": d.firm.astype(str).to_numpy(),
+                      "year": d.year.to_numpy(np.int64), "era": d.era.to_numpy()})
+    return d, table
+
+
+@pytest.mark.parametrize("opts", [{"robust": "HC3"}, {"robust": "HC1"}, {"cluster": "firm"}])
+def test_group_robust_errors_equal_statsmodels_on_each_groups_rows(opts, tmp_path):
+    """Robust and firm-clustered errors per era of the grunfeld panel (statsmodels ships it) equal
+    statsmodels OLS(...).fit(cov_type=...) on that era's rows alone; they survive the model file."""
+    d, table = _grunfeld_eras()
+    g = tallfit.fit(table, "invest", "value,capital", by="era", batch_rows=17, **opts)
+    kind = opts.get("robust") or "cluster"
+    for key in ("early", "late"):
+        rows = d[d.era == key]
+        ols = sm.OLS(rows.invest.to_numpy(float), sm.add_constant(rows[["value", "capital"]].to_numpy(float)))
+        if kind == "cluster":
+            ref = ols.fit(cov_type="cluster", cov_kwds={"groups": rows.firm.factorize()[0]})
+            est = g.groups[key].robust["estimators"]["cluster:firm"]
+        else:
+            ref = ols.fit(cov_type=kind)
+            est = g.groups[key].robust["estimators"][kind]
+        np.testing.assert_allclose(est["std_error"], ref.bse, rtol=1e-9)
+    text = g.summary()
+    assert "from a second pass" in text
+    if kind == "cluster":
+        assert text.count("only 11 clusters by firm") == 1  # one note for the groups that share it
+    g.save(tmp_path / "g.json")
+    assert tallfit.load(tmp_path / "g.json").to_dict() == g.to_dict()
+
+
+def test_group_robust_errors_with_each_groups_own_coding():
+    """A categorical whose levels differ by group (year within era): each group's rows go through
+    its own coding; HC1 equals statsmodels with that group's year dummies."""
+    d, table = _grunfeld_eras()
+    g = tallfit.fit(table, "invest", ["value", "capital"], categorical="year", by="era", robust="HC1")
+    for key in ("early", "late"):
+        rows = d[d.era == key]
+        m = g.groups[key]
+        years = sorted(set(rows.year))
+        ref_year = [int(t.split("[")[1].rstrip("]")) for t in m.terms if t.startswith("year[")]
+        base = [y for y in years if y not in ref_year]
+        assert len(base) == 1
+        D = np.column_stack([(rows.year.to_numpy() == y).astype(float) for y in ref_year])
+        X = np.column_stack([np.ones(len(rows)), rows.value, rows.capital, D])
+        ref = sm.OLS(rows.invest.to_numpy(float), X).fit(cov_type="HC1")
+        np.testing.assert_allclose(m.robust["estimators"]["HC1"]["std_error"], ref.bse, rtol=1e-8)
+
+
+def test_a_group_with_one_cluster_gets_a_note_not_a_failure():
+    d, table = _grunfeld_eras()
+    one = pa.array(np.where(d.era == "early", "c0", d.firm.astype(str)))
+    table = table.append_column("site", one)
+    g = tallfit.fit(table, "invest", ["value", "capital"], by="era", cluster="site")
+    assert g.groups["early"].robust is None and g.groups["late"].robust is not None
+    assert any("at least 2 clusters" in w for w in g.groups["early"].warnings)
+    assert "no robust errors for this group" in g.summary()

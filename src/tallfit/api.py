@@ -147,15 +147,21 @@ def fit(
             "drop --refine/--solver or the --absorb key"
         )
     if spec.by:
-        if refine or solver != "exact" or absorb or robust or cluster:
+        if refine or solver != "exact" or absorb:
             from tallfit.errors import DesignError
 
             raise DesignError(
-                "per-group models (--by) are fitted exactly, without refinement, absorbed keys or "
-                "robust errors; drop those options or fit one group at a time"
+                "per-group models (--by) are fitted exactly, without refinement or absorbed keys; "
+                "drop those options or fit one group at a time"
             )
-        return fit_by_group(source, spec, Design(spec), batch_rows, progress, drop_aliased, rank_tol,
-                             conf_level, reference, min_level_count, max_levels, merge_levels, drop_levels)
+        grouped = fit_by_group(source, spec, Design(spec), batch_rows, progress, drop_aliased, rank_tol,
+                               conf_level, reference, min_level_count, max_levels, merge_levels, drop_levels)
+        if robust or cluster:  # one more pass, each row to its group's sums (engine/grouped_pass.py)
+            from tallfit.engine.grouped_pass import grouped_robust
+
+            grouped_robust(grouped, source, robust=robust, cluster=cluster_list(cluster), batch_rows=batch_rows,
+                           progress=progress)
+        return grouped
     structured = method == "qr" and structured_applies(spec)
     if structured:  # level statistics instead of dense indicator columns (engine/levels_pass.py)
         design = Design(spec, structured=True)

@@ -32,6 +32,21 @@ def group_keys(columns: list[pa.Array]) -> pa.Array:
     return pc.binary_join_element_wise(*strings, KEY_SEP, null_handling="emit_null")
 
 
+def group_rows(columns: list[pa.Array]):
+    """(key, row indices in row order) of each distinct key of the grouping columns, nulls last as
+    the key None: one dictionary encoding and one stable sort, not a filter per group."""
+    keys = pc.dictionary_encode(group_keys(columns))
+    if isinstance(keys, pa.ChunkedArray):
+        keys = keys.combine_chunks()
+    groups = keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)
+    order = np.argsort(groups, kind="stable")
+    ends = np.cumsum(np.bincount(groups, minlength=len(keys.dictionary) + 1))
+    for g, key in enumerate(keys.dictionary.to_pylist() + [None]):
+        idx = order[(ends[g - 1] if g else 0): ends[g]]
+        if idx.size:
+            yield key, idx
+
+
 @dataclass
 class GroupedFit:
     """Models per group, the groups that could not be fitted, and how the groups were formed."""
@@ -55,7 +70,7 @@ class GroupedFit:
             "by": list(self.by),
             "groups": [
                 {"key": k, "n_used": r.inference.n_used, "r_squared": r.inference.r_squared,
-                 "residual_std": r.inference.residual_std, "terms": r.term_table()}
+                 "residual_std": r.inference.residual_std, "terms": r.term_table(), "robust": r.robust}
                 for k, r in self.groups.items()
             ],
             "failed": [{"key": k, "rows": self.rows.get(k, 0), "reason": v} for k, v in self.failed.items()],
@@ -105,52 +120,35 @@ class GroupAccumulators:
 
     def update_block(self, block) -> None:
         names = block.names or self.names
-        keys = group_keys([block.extra[c] for c in self.by])
-        enc = pc.dictionary_encode(keys)
-        if isinstance(enc, pa.ChunkedArray):
-            enc = enc.combine_chunks()
-        idx = enc.indices.to_numpy(zero_copy_only=False)
-        nulls = enc.indices.is_null().to_numpy(zero_copy_only=False)
-        self.null_rows += int(nulls.sum())
-        dictionary = enc.dictionary.to_pylist()
-        codes = np.where(nulls, -1, idx).astype(np.int64)
         weights = getattr(block, "row_weights", None)
-        order = np.argsort(codes, kind="stable")
-        sorted_codes = codes[order]
-        bounds = np.flatnonzero(np.diff(sorted_codes)) + 1
-        for part in np.split(order, bounds):
-            if part.size == 0 or codes[part[0]] < 0:
+        parts = []
+        for key, rows in group_rows([block.extra[c] for c in self.by]):
+            if key is None:  # a missing group key: no group
+                self.null_rows += rows.size
                 continue
-            key = dictionary[codes[part[0]]]
             acc = self.accs.get(key)
             if acc is None:
                 acc = self.accs[key] = FactorAccumulator.create(names)
                 self._check_budget(len(names))
             if acc.names != names:
                 acc.expand(names)
-            rows = np.sort(part)
             A = np.asfortranarray(block.A[rows])
             acc.update(A, n_read=A.shape[0])
             if weights is not None:  # rows are already scaled by √w; the sums serve the df
                 wk = weights[rows]
                 acc.weight_sum = (acc.weight_sum or 0.0) + float(wk.sum())
                 acc.weight_log_sum = (acc.weight_log_sum or 0.0) + float(np.log(wk).sum())
+            parts.append((acc, A))
         self.n_read += block.n_read
         self.n_used += block.A.shape[0]
         for name, count in block.dropped_by_column.items():
             self.dropped[name] = self.dropped.get(name, 0) + count
-        if block.level_counts:
-            self._count_levels(block, codes, dictionary)
-
-    def _count_levels(self, block, codes, dictionary) -> None:
-        """Rows per categorical level, per group (from the indicator columns of the block)."""
-        for code in np.unique(codes[codes >= 0]):
-            acc = self.accs[dictionary[code]]
-            part = recount_levels(block.A[codes == code], block.names, block.level_counts)
-            for col, counts in part.items():
-                d = acc.level_counts.setdefault(col, {})
-                for lvl, c in counts.items():
-                    d[lvl] = d.get(lvl, 0) + c
+        if block.level_counts:  # rows per categorical level, per group (from its indicator columns)
+            for acc, A in parts:
+                for col, counts in recount_levels(A, block.names, block.level_counts).items():
+                    d = acc.level_counts.setdefault(col, {})
+                    for lvl, c in counts.items():
+                        d[lvl] = d.get(lvl, 0) + c
 
 
 def fit_groups(source, spec, batch_rows, progress, design, finalize, budget: int = DEFAULT_MEMORY_BUDGET) -> GroupedFit:

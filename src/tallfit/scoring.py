@@ -222,22 +222,13 @@ class _GroupScorer:
         self.intervals = intervals
 
     def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
-        from tallfit.grouped import group_keys
+        from tallfit.grouped import group_rows
 
-        keys = pc.dictionary_encode(group_keys([batch.column(c) for c in self.by]))
-        if isinstance(keys, pa.ChunkedArray):
-            keys = keys.combine_chunks()
         m = batch.num_rows
         names = ["prediction"] + (["ci_low", "ci_high", "pi_low", "pi_high"] if self.intervals else [])
         out = {n: np.full(m, np.nan) for n in names}
         # rows of each distinct key (a null key: its own run, with no model), in row order
-        groups = keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)
-        order = np.argsort(groups, kind="stable")
-        ends = np.cumsum(np.bincount(groups, minlength=len(keys.dictionary) + 1))
-        for g, key in enumerate(keys.dictionary.to_pylist() + [None]):
-            idx = order[(ends[g - 1] if g else 0): ends[g]]
-            if idx.size == 0:
-                continue
+        for key, idx in group_rows([batch.column(c) for c in self.by]):
             scorer = self.scorers.get(key)
             if scorer is None:
                 report.rows += idx.size

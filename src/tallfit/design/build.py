@@ -9,6 +9,16 @@ from tallfit.design.sql import pairwise_interactions, parse_derive, polynomial, 
 from tallfit.errors import DesignError
 
 
+def column_names(value: str | Sequence[str] | None) -> tuple[str, ...]:
+    """Column names from a list, or from one comma-separated string ("zone,pod"): a bare string
+    is never read as a sequence of one-letter names."""
+    if value is None:
+        return ()
+    if isinstance(value, str):
+        return tuple(v.strip() for v in value.split(",") if v.strip())
+    return tuple(value)
+
+
 def make_spec(
     target: str,
     features: Sequence[str],
@@ -26,7 +36,11 @@ def make_spec(
     by: Sequence[str] = (),
 ) -> ModelSpec:
     """The spec of a fit. Derived terms (``derive``, ``interactions``, ``polynomials``) are added
-    to the features after the listed ones, unless already listed by name."""
+    to the features after the listed ones, unless already listed by name. Lists of columns may
+    also be given as one comma-separated string; ``derive`` as one expression."""
+    features, categorical = column_names(features), column_names(categorical)
+    interactions, by = column_names(interactions), column_names(by)
+    derive = [derive] if isinstance(derive, str) else derive
     pairs: list[tuple[str, str]] = []
     for d in derive:
         pairs.append(parse_derive(d) if isinstance(d, str) else (str(d[0]), str(d[1]).strip()))

@@ -1,0 +1,72 @@
+"""Robust and clustered errors for per-group models (``by``): one more pass, rows routed by group.
+
+Each batch is split by group key (one stable sort, grouped.group_rows); each group's rows go
+through that group's own design (its categorical coding) into that group's second-pass sums
+(engine/pass_sums.py), so every group gets exactly the sandwich a pass over its rows alone would
+give. Rows of groups without a model (too few rows, aliased) and of a missing key are skipped.
+Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics stay one model at a time.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import pyarrow as pa
+
+from tallfit.design.design import Design, check_design_columns
+from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, chunk_label
+from tallfit.engine.pass_sums import PartSums, PassPlan
+from tallfit.engine.prefetch import prefetched
+from tallfit.errors import ColumnNotFoundError, DesignError
+from tallfit.grouped import group_rows
+from tallfit.inputs import as_source, source_label
+from tallfit.kernels.lapack_calls import single_blas_thread
+
+
+def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] = (),
+                   batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None) -> None:
+    """Set ``robust`` on every group's model from one pass over ``data`` (its fitting data)."""
+    from tallfit.solve.robust import check_kind, robust_for_model, robust_refusal
+
+    check_kind(robust)
+    cluster = list(dict.fromkeys(cluster))
+    if len(cluster) > 2:
+        raise DesignError(f"clustering takes one or two key columns, not {len(cluster)} ({', '.join(cluster)})")
+    models = grouped.groups
+    first = next(iter(models.values()))
+    if robust_refusal(first):
+        raise DesignError(robust_refusal(first))
+    spec = first.spec
+    source = as_source(data)
+    where = source_label(source)
+    check_design_columns(spec, source.schema, where)
+    for col in list(grouped.by) + cluster:
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    plans = {k: PassPlan(m, cluster, (), False, 0, robust) for k, m in models.items()}
+    designs = {k: Design(spec, coding=m.coding, level_codes=plans[k].level_codes) for k, m in models.items()}
+    sums = {k: PartSums(plans[k], source) for k in models}
+    read = list(dict.fromkeys(spec.input_columns + list(grouped.by) + cluster))
+
+    def blocks():
+        for chunk in source.batches(read, batch_rows):
+            batch = chunk.batch
+            label = chunk_label(source, chunk)
+            for key, idx in group_rows([batch.column(c) for c in grouped.by]):
+                if key in designs:
+                    block = designs[key].block(batch.take(pa.array(idx)), label, extra_columns=cluster)
+                    block.file_index, block.row_start = chunk.file_index, chunk.row_start
+                    yield key, block
+            if progress is not None:
+                progress(batch.num_rows, chunk.file_index)
+
+    with single_blas_thread():
+        for key, block in prefetched(blocks(), depth=2):
+            sums[key].fold(block)
+    for key, model in models.items():
+        sp = sums[key].finish()
+        try:
+            model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust)
+        except DesignError as exc:  # one group's problem (too few clusters, say) is that group's
+            model.robust = None
+            model.warnings.append(f"no robust errors for this group: {exc}")
