@@ -10,7 +10,8 @@ fitted first; then, in each of --repeats rounds, one after the other (warm page 
 * second pass, robust sums only (HC0–HC3, Breusch–Pagan);
 * second pass, robust + diagnostics (binned residuals per feature and fitted value, the 2-D
   histogram, the residual sketch, the top-k rows): the target case;
-* the same with errors clustered by host_id; and with one worker, for scale.
+* the same with errors clustered by host_id; with one worker, for scale; and for the model with
+  host_id absorbed (each row centred on its host by a gathered row of the level table).
 
 Printed: median seconds of each, the median over rounds of each time ÷ that round's scan (both
 in one run), and the CPU seconds and cores used (the CPU time shows the cost when other jobs take
@@ -61,6 +62,7 @@ def main() -> None:
         data = [str(f) for f in files]
         source = as_source(data if len(data) > 1 else data[0])
         model = tallfit.fit(source, target=TARGET, features=features, batch_rows=args.batch_rows)
+        absorbed = tallfit.fit(source, target=TARGET, features=features, absorb="host_id", batch_rows=args.batch_rows)
         br = args.batch_rows
         cases = {
             "bare scan (floor)": lambda: [scan_parquet(f, columns) for f in data],
@@ -68,6 +70,8 @@ def main() -> None:
             "second pass, robust + diagnostics": lambda: second_pass(model, source, batch_rows=br),
             "  + clusters by host_id": lambda: second_pass(model, source, cluster=["host_id"], batch_rows=br),
             "  robust + diagnostics, 1 worker": lambda: second_pass(model, source, batch_rows=br, workers=1),
+            f"  host_id absorbed ({absorbed.coding['absorbed']['levels']:,} levels)":
+                lambda: second_pass(absorbed, source, batch_rows=br),
         }
         for run in list(cases.values())[1:]:
             run()  # compile or load the cached kernels
