@@ -245,3 +245,22 @@ def test_weighted_absorbed_report_bins_the_data_units(grunfeld):
         sums = sp.feature_bins.sums[j]
         assert sums[:, 0].sum() == len(df)
         _close(sums[:, 1].sum(), df[f].sum())
+
+
+def test_rows_without_a_key_value_are_dropped_in_the_pass_as_in_the_fit(grunfeld, tmp_path):
+    """Null keys: the fit drops those rows (counted under the key) and so does the pass, which
+    then reads the same rows (same_data) and gives the robust errors of the dummy fit without them."""
+    df, table = grunfeld
+    firm = table.column("firm").to_pylist()
+    blank = [3, 50, 51, 140]
+    for i in blank:
+        firm[i] = None
+    table = table.set_column(table.schema.get_field_index("firm"), "firm", pa.array(firm))
+    pq.write_table(table, tmp_path / "g.parquet", row_group_size=60)  # parts read on every core
+    model = tallfit.fit(str(tmp_path / "g.parquet"), "invest", FEATURES, absorb="firm")
+    out = diagnose(model, str(tmp_path / "g.parquet"), robust="HC1")
+    assert out["diagnostics"]["dropped_by_column"] == {"firm": len(blank)}
+    assert out["diagnostics"]["same_data"]
+    kept = df.drop(index=df.index[blank])
+    ols, _ = _dummy_fit(kept)
+    _close(out["model"].robust["estimators"]["HC1"]["std_error"], ols.fit(cov_type="HC1").bse[:2])

@@ -67,11 +67,13 @@ class Design:
 
     @property
     def plain(self) -> bool:
-        """Numeric features only, default missing policy, no weights: the fast path."""
+        """Numeric features only, default missing policy, no weights: the fast path. In a pass
+        after the fit (a fixed coding) an absorbed key is only an extra column read beside."""
         s = self.spec
+        absorb = bool(s.absorb) and self.fixed_names is None
         if self.predicting:
-            return not (s.categorical or s.derive or s.missing or s.absorb)
-        return not (s.categorical or s.needs_frame or s.weights or s.missing or s.absorb or s.by)
+            return not (s.categorical or s.derive or s.missing or absorb)
+        return not (s.categorical or s.needs_frame or s.weights or s.missing or absorb or s.by)
 
     # -- one batch ---------------------------------------------------------------------------
     def block(self, batch: pa.RecordBatch, label: str, extra_columns=()) -> DesignBlock:

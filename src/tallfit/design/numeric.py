@@ -100,9 +100,9 @@ def design_block(batch: pa.RecordBatch, spec: ModelSpec, out: np.ndarray | None 
     one min and one max per column, which also decide whether any value is missing (NaN and
     infinities reach the min or max), so the finiteness check costs nothing extra.
     """
-    cols = spec.input_columns
-    A = fill_matrix(batch, cols, spec.intercept, out=out)
-    first = 1 if spec.intercept else 0
+    cols = spec.numeric_columns  # a plain design: the features and the target (an absorbed key rides along)
+    A = fill_matrix(batch, cols, spec.has_intercept_column, out=out)
+    first = 1 if spec.has_intercept_column else 0
     if A.shape[0] == 0:
         return DesignBlock(A=A, n_read=0)
     lo, hi = A.min(axis=0), A.max(axis=0)
@@ -120,7 +120,7 @@ def design_block(batch: pa.RecordBatch, spec: ModelSpec, out: np.ndarray | None 
 
 def feature_block(batch: pa.RecordBatch, spec: ModelSpec) -> tuple[np.ndarray, np.ndarray]:
     """X for prediction (all rows kept) and a mask of rows whose features are all finite."""
-    X = fill_matrix(batch, list(spec.features), spec.intercept)
-    keep, _ = finite_rows(X, list(spec.features), 1 if spec.intercept else 0)
+    X = fill_matrix(batch, list(spec.features), spec.has_intercept_column)
+    keep, _ = finite_rows(X, list(spec.features), 1 if spec.has_intercept_column else 0)
     ok = np.ones(X.shape[0], dtype=bool) if keep is None else keep
     return X, ok

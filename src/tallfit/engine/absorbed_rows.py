@@ -76,7 +76,8 @@ class AbsorbedRows:
                 share *= block.row_weights
             ok = known & (share < ALONE)
             if not ok.all():
-                _leave_out(block, ok, {UNSEEN_LEVEL: int(np.count_nonzero(~known)),
+                null = int(np.count_nonzero(codes == -2))  # no key value: dropped as in the fit
+                _leave_out(block, ok, {self.column: null, UNSEEN_LEVEL: int(np.count_nonzero(~known)) - null,
                                        ONE_ROW_LEVEL: int(np.count_nonzero(known & ~ok))})
                 codes, share = codes[ok], share[ok]
             block.key_codes = np.ascontiguousarray(codes, dtype=np.int64)

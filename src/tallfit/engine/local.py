@@ -131,8 +131,8 @@ def _block_of(chunk, label: str, design: Design, spec: ModelSpec, pool, extra_co
     """The design block of one chunk (in a pooled buffer when the design is plain), conversion
     failures reported with the chunk's file and rows."""
     try:
-        if pool is not None and design.plain and not extra_columns:
-            return _pooled_block(chunk.batch, spec, pool)
+        if pool is not None and design.plain:
+            return _pooled_block(chunk.batch, spec, pool, extra_columns)
         return design.block(chunk.batch, label, extra_columns)
     except TallfitError:
         raise
@@ -140,14 +140,19 @@ def _block_of(chunk, label: str, design: Design, spec: ModelSpec, pool, extra_co
         raise DataSourceError(f"cannot convert {label} to numbers: {exc}") from None
 
 
-def _pooled_block(batch, spec: ModelSpec, pool) -> DesignBlock:
-    """The plain design of one batch, filled into a pooled buffer (given back at once if rows were dropped)."""
-    k = len(spec.input_columns) + (1 if spec.intercept else 0)
+def _pooled_block(batch, spec: ModelSpec, pool, extra_columns=()) -> DesignBlock:
+    """The plain design of one batch, filled into a pooled buffer (given back at once if rows were
+    dropped), with the extra columns restricted to the used rows."""
+    k = len(spec.numeric_columns) + (1 if spec.has_intercept_column else 0)
     buf = pool.take((batch.num_rows, k))
     block = design_block(batch, spec, out=buf)
     if block.A is not buf:
         pool.give(buf)
     block.names = None
+    mask = None if block.keep is None else pa.array(block.keep)
+    for col in extra_columns:
+        arr = batch.column(col)
+        block.extra[col] = arr if mask is None else arr.filter(mask)
     return block
 
 

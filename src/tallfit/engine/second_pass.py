@@ -149,7 +149,7 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
     """Every part on its own worker; sums merged in part order (see the module note)."""
     w = worker_count(workers)
     lock = threading.Lock()
-    pool = BufferPool() if not extra else None
+    pool = BufferPool()
 
     def stream(i: int):
         sub, file_index = parts[i]
