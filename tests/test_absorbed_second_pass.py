@@ -70,16 +70,22 @@ def test_hc_errors_equal_the_dummy_fit(grunfeld, kind):
 
 @pytest.mark.parametrize("key", ["firm", "year"])
 def test_one_way_clusters_equal_the_dummy_fit(grunfeld, key):
-    """Clustered by the absorbed key itself (firm) and by another key (year)."""
+    """Clustered by another key (year): statsmodels' CRV1 of the dummy fit, k = p + G. Clustered by
+    the absorbed key itself (firm, the levels nested in the clusters): the same sandwich with G left
+    out of k, i.e. statsmodels' covariance times (n − p − G)/(n − p), and a note that says so."""
     df, table = grunfeld
     model = tallfit.fit(table, "invest", FEATURES, absorb="firm", cluster=key, batch_rows=13)
     ols, _ = _dummy_fit(df)
     groups = df[key].astype(str).factorize()[0]
     ref = ols.fit(cov_type="cluster", cov_kwds={"groups": groups}, use_t=True)
     est = model.robust["estimators"][f"cluster:{key}"]
-    _close(est["std_error"], ref.bse[:2])
-    _close(est["covariance"], ref.cov_params()[:2, :2])
+    n, p, G = len(df), 2, 11
+    scale = (n - p - G) / (n - p) if key == "firm" else 1.0
+    _close(est["covariance"], ref.cov_params()[:2, :2] * scale)
+    _close(est["std_error"], ref.bse[:2] * np.sqrt(scale))
     assert est["df"] == groups.max()  # G − 1
+    nested_note = any("lie within the clusters" in note for note in model.robust["notes"])
+    assert nested_note == (key == "firm")
 
 
 def test_two_way_clusters_equal_inclusion_exclusion_on_the_dummy_design(grunfeld):
@@ -224,14 +230,16 @@ def test_analytic_weights_equal_wls_with_dummies(grunfeld, kind):
     model = tallfit.fit(table, "invest", FEATURES, absorb="firm", weights="w", batch_rows=23, **opts)
     _, X = _dummy_fit(df)
     wls = sm.WLS(df.invest.to_numpy(float), X, weights=w)
-    if kind == "cluster":
+    scale = 1.0
+    if kind == "cluster":  # by the absorbed key: G left out of the cluster factor's k (see above)
         ref = wls.fit(cov_type="cluster", cov_kwds={"groups": df.firm.factorize()[0]})
         est = model.robust["estimators"]["cluster:firm"]
+        scale = (len(df) - 2 - 11) / (len(df) - 2)
     else:
         ref = wls.fit(cov_type=kind)
         est = model.robust["estimators"][kind]
     _close(model.inference.estimate, ref.params[:2])
-    _close(est["std_error"], ref.bse[:2])
+    _close(est["std_error"], ref.bse[:2] * np.sqrt(scale))
 
 
 def test_weighted_absorbed_report_bins_the_data_units(grunfeld):

@@ -15,9 +15,11 @@ eigenvalues are set to zero as they propose (§2.3), and a note says so.
 With an absorbed key (G levels swept out) the sums are those of the rows centred on their levels
 (engine/absorbed_rows.py), which by Frisch–Waugh–Lovell give the slopes' block of the sandwich of
 the fit with one indicator per level; its k = p + G parameters enter HC1's n/(n − k), the cluster
-factor and the degrees of freedom, as statsmodels computes them for that fit. (When the clusters
-nest the levels, some authors leave G out of the cluster factor, e.g. Cameron & Miller 2015,
-§III.B, cited from memory; the explicit-dummy factor kept here is the larger, more cautious one.)
+factor and the degrees of freedom, as statsmodels computes them for that fit; except that when the
+clusters are the absorbed key's own levels (the fixed effects nested in the clusters) the cluster
+factor leaves G out of k, the usual choice there (Cameron & Miller 2015, §III.B, cited from
+memory): each level's effect is estimated within one cluster, and counting G would inflate the
+errors by √((n − p)/(n − p − G)), which for short panels is large.
 
 Inference uses Student t with n − p degrees of freedom for HC0–HC3 and G − 1 for clusters
 (min(G_A, G_B) − 1 for two-way), the choices statsmodels makes with ``use_t=True`` and its
@@ -252,10 +254,12 @@ def robust_results(
     selected: str | None,
     level: float,
     swept: int = 0,
+    nested: bool = False,
 ) -> dict[str, Any]:
     """The ``robust`` value of a FitResult: the HC estimators the sums give, the clustered one if
     asked. ``swept``: levels of an absorbed key, parameters besides the p coefficients (as in a fit
-    with one indicator column per level)."""
+    with one indicator column per level); ``nested``: those levels lie within the clusters (the
+    key is the cluster key), so the cluster factor leaves them out of k."""
     n, p = sums.n, sums.p
     if n <= p + swept:
         raise DesignError(f"{n} rows for {p + swept} parameters: robust errors need more rows than parameters")
@@ -269,8 +273,15 @@ def robust_results(
         )
     info: dict[str, Any] = {}
     if clusters:
-        V, cnotes = cluster_covariance(R11, clusters, n, swept)
+        V, cnotes = cluster_covariance(R11, clusters, n, 0 if nested else swept)
         notes.extend(cnotes)
+        if nested and swept:
+            notes.append(
+                f"the {swept:,} absorbed levels lie within the clusters, so the cluster factor "
+                "(n − 1)/(n − k) leaves them out of k, as is usual for fixed effects nested in clusters "
+                "(Cameron & Miller 2015, cited from memory); a fit with one indicator column per level "
+                f"counts them, which would make these errors {np.sqrt((n - p) / (n - p - swept)):.4g}× larger"
+            )
         key = "cluster:" + "+".join(c.name for c in clusters[:2])
         G = min(c.groups for c in clusters[:2])
         estimators[key] = coefficient_table(beta, V, G - 1, level)
@@ -319,8 +330,10 @@ def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], sel
     p = len(cols)
     R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
     beta = np.asarray(model.inference.estimate, dtype=float)
+    keys = [c.name for c in clusters]
+    nested = bool(model.spec.absorb) and keys == [model.spec.absorb]  # one-way by the absorbed key itself
     out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level,
-                         swept=swept)
+                         swept=swept, nested=nested)
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = np.asarray(out["estimators"][out["selected"]]["std_error"]) / model.inference.std_error
     out["terms"] = list(model.terms)
