@@ -22,7 +22,6 @@ import tallfit
 from tallfit.api import diagnose
 from tallfit.engine.absorbed_rows import ONE_ROW_LEVEL, UNSEEN_LEVEL
 from tallfit.engine.second_pass import second_pass
-from tallfit.errors import DesignError
 from tallfit.modelfile import load_model, save_model
 
 sm = pytest.importorskip("statsmodels.api")

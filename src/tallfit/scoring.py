@@ -16,7 +16,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from tallfit.atomic import atomic_path, check_writable
 from tallfit.diagnostics.kernels import gather_add, level_tables

@@ -26,12 +26,10 @@ from tallfit.kernels.lapack_calls import single_blas_thread
 def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] = (),
                    batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None) -> None:
     """Set ``robust`` on every group's model from one pass over ``data`` (its fitting data)."""
-    from tallfit.solve.robust import check_kind, robust_for_model, robust_refusal
+    from tallfit.solve.robust import check_kind, cluster_keys, robust_for_model, robust_refusal
 
     check_kind(robust)
-    cluster = list(dict.fromkeys(cluster))
-    if len(cluster) > 2:
-        raise DesignError(f"clustering takes one or two key columns, not {len(cluster)} ({', '.join(cluster)})")
+    cluster = cluster_keys(cluster)
     models = grouped.groups
     first = next(iter(models.values()))
     if robust_refusal(first):

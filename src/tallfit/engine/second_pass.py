@@ -29,7 +29,7 @@ from tallfit.engine.pass_sums import HEAT_CELLS, PartSums, PassPlan, SecondPass
 from tallfit.errors import DesignError
 from tallfit.kernels.lapack_calls import single_blas_thread
 from tallfit.results import FitResult
-from tallfit.solve.robust import check_kind
+from tallfit.solve.robust import check_kind, cluster_keys
 
 __all__ = ["HEAT_CELLS", "SAMPLE_ROWS", "SecondPass", "TOP_K", "second_pass"]
 
@@ -221,9 +221,7 @@ def second_pass(
             f"robust errors and residual checks for a model with an absorbed key ({model.spec.absorb!r}) "
             "need its levels' means, which this model file lacks; fit it again with this version"
         )
-    cluster = list(dict.fromkeys(cluster))
-    if len(cluster) > 2:
-        raise DesignError(f"clustering takes one or two key columns, not {len(cluster)} ({', '.join(cluster)})")
+    cluster = cluster_keys(cluster)
     workers = worker_count(workers)
     source = as_source(data)
     check_kind(robust)

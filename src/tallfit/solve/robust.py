@@ -160,6 +160,14 @@ def _sandwich(Rinv: np.ndarray, meat_z: np.ndarray) -> np.ndarray:
     return (V + V.T) / 2.0
 
 
+def cluster_keys(cluster) -> list[str]:
+    """The cluster key columns, each once; one or two (a clear error for more)."""
+    keys = list(dict.fromkeys(cluster))
+    if len(keys) > 2:
+        raise DesignError(f"clustering takes one or two key columns, not {len(keys)} ({', '.join(keys)})")
+    return keys
+
+
 def check_kind(kind: str | None) -> None:
     """Fail before any pass on an unknown estimator name (None means the default, HC3; "all"
     computes the four, with HC3 as the headline)."""
