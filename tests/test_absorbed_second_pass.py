@@ -95,16 +95,18 @@ def test_two_way_clusters_equal_inclusion_exclusion_on_the_dummy_design(grunfeld
     n, k = X.shape
     bread = np.linalg.inv(X.T @ X)
 
-    def crv1(groups):
+    def crv1(groups, params):
         G = groups.max() + 1
         S = np.zeros((G, k))
         np.add.at(S, groups, X * e[:, None])
-        return bread @ (S.T @ S) @ bread * G / (G - 1) * (n - 1) / (n - k)
+        return bread @ (S.T @ S) @ bread * G / (G - 1) * (n - 1) / (n - params)
 
     firm = df.firm.factorize()[0]
     year = df.year.factorize()[0]
     pair = np.unique(firm * 100 + year, return_inverse=True)[1]
-    dense = (crv1(firm) + crv1(year) - crv1(pair))[:2, :2]
+    # the firm levels lie within the firm clusters and within the firm × year cells: those two
+    # terms leave them out of k (see the one-way test); the year term counts them, k = p + G
+    dense = (crv1(firm, 2) + crv1(year, k) - crv1(pair, 2))[:2, :2]
     _close(model.robust["estimators"]["cluster:firm+year"]["covariance"], dense)
 
 

@@ -15,9 +15,9 @@ eigenvalues are set to zero as they propose (§2.3), and a note says so.
 With an absorbed key (G levels swept out) the sums are those of the rows centred on their levels
 (engine/absorbed_rows.py), which by Frisch–Waugh–Lovell give the slopes' block of the sandwich of
 the fit with one indicator per level; its k = p + G parameters enter HC1's n/(n − k), the cluster
-factor and the degrees of freedom, as statsmodels computes them for that fit; except that when the
-clusters are the absorbed key's own levels (the fixed effects nested in the clusters) the cluster
-factor leaves G out of k, the usual choice there (Cameron & Miller 2015, §III.B, cited from
+factor and the degrees of freedom, as statsmodels computes them for that fit; except that for
+clusters the levels nest in (the absorbed key's own, and in two-way clustering the cells of its
+pair with the other key) the cluster factor leaves G out of k, the usual choice there (Cameron & Miller 2015, §III.B, cited from
 memory): each level's effect is estimated within one cluster, and counting G would inflate the
 errors by √((n − p)/(n − p − G)), which for short panels is large.
 
@@ -28,6 +28,7 @@ default ``df_correction``.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -193,14 +194,16 @@ def one_way_factor(groups: int, n: int, k: int) -> float:
 
 
 def cluster_covariance(R11: np.ndarray, clusters: list[ClusterSums], n: int,
-                       swept: int = 0) -> tuple[np.ndarray, list[str]]:
+                       swept: int | Sequence[int] = 0) -> tuple[np.ndarray, list[str]]:
     """One-way (one ClusterSums) or two-way (A, B, A∩B) cluster-robust covariance, with notes;
-    ``swept`` levels of an absorbed key count as parameters in the factor."""
-    p = R11.shape[0] + swept
+    ``swept`` levels of an absorbed key count as parameters in the factor (one count for every
+    term, or one per ClusterSums: 0 for clusters the levels are nested in)."""
+    counts = [int(swept)] * len(clusters) if np.isscalar(swept) else [int(v) for v in swept]
     Rinv = _bread(R11)
     notes: list[str] = []
-    if n <= p:
-        raise DesignError(f"{n} rows for {p} parameters: clustered errors need more rows than parameters")
+    k = R11.shape[0] + max(counts, default=0)
+    if n <= k:
+        raise DesignError(f"{n} rows for {k} parameters: clustered errors need more rows than parameters")
     for c in clusters:
         if c.groups < 2:
             raise DesignError(
@@ -208,14 +211,15 @@ def cluster_covariance(R11: np.ndarray, clusters: list[ClusterSums], n: int,
                 "clustered errors need at least 2 clusters (and about 50 to be reliable)"
             )
 
-    def one(c: ClusterSums) -> np.ndarray:
-        return _sandwich(Rinv, c.meat()) * one_way_factor(c.groups, n, p)
+    def one(i: int) -> np.ndarray:
+        c = clusters[i]
+        return _sandwich(Rinv, c.meat()) * one_way_factor(c.groups, n, R11.shape[0] + counts[i])
 
     if len(clusters) == 1:
-        V = one(clusters[0])
+        V = one(0)
     elif len(clusters) == 3:
         a, b, ab = clusters
-        V = one(a) + one(b) - one(ab)
+        V = one(0) + one(1) - one(2)
         w, Q = np.linalg.eigh(V)
         if w.min() < -1e-12 * max(abs(w.max()), np.finfo(float).tiny):
             notes.append(
@@ -262,12 +266,13 @@ def robust_results(
     selected: str | None,
     level: float,
     swept: int = 0,
-    nested: bool = False,
+    nested: Sequence[bool] = (),
 ) -> dict[str, Any]:
     """The ``robust`` value of a FitResult: the HC estimators the sums give, the clustered one if
     asked. ``swept``: levels of an absorbed key, parameters besides the p coefficients (as in a fit
-    with one indicator column per level); ``nested``: those levels lie within the clusters (the
-    key is the cluster key), so the cluster factor leaves them out of k."""
+    with one indicator column per level); ``nested``: per ClusterSums, whether those levels lie
+    within its clusters (the key is the cluster key, or part of a pair), which leaves them out of
+    that term's k."""
     n, p = sums.n, sums.p
     if n <= p + swept:
         raise DesignError(f"{n} rows for {p + swept} parameters: robust errors need more rows than parameters")
@@ -281,9 +286,10 @@ def robust_results(
         )
     info: dict[str, Any] = {}
     if clusters:
-        V, cnotes = cluster_covariance(R11, clusters, n, 0 if nested else swept)
+        nested = list(nested) or [False] * len(clusters)
+        V, cnotes = cluster_covariance(R11, clusters, n, [0 if inside else swept for inside in nested])
         notes.extend(cnotes)
-        if nested and swept:
+        if any(nested) and swept:
             notes.append(
                 f"the {swept:,} absorbed levels lie within the clusters, so the cluster factor "
                 "(n − 1)/(n − k) leaves them out of k, as is usual for fixed effects nested in clusters "
@@ -338,8 +344,11 @@ def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], sel
     p = len(cols)
     R11 = reduce_factor(model.accumulator.R, cols)[:p, :p]
     beta = np.asarray(model.inference.estimate, dtype=float)
-    keys = [c.name for c in clusters]
-    nested = bool(model.spec.absorb) and keys == [model.spec.absorb]  # one-way by the absorbed key itself
+    # the absorbed levels lie within the clusters of the absorbed key itself, and within the cells
+    # of a pair that includes it (the pair's sums come last: engine/pass_sums.py)
+    key = model.spec.absorb
+    names = [c.name for c in clusters]
+    nested = [bool(key) and (name == key or (i == 2 and key in names[:2])) for i, name in enumerate(names)]
     out = robust_results(R11, beta, sums, clusters, selected=selected, level=model.inference.conf_level,
                          swept=swept, nested=nested)
     with np.errstate(divide="ignore", invalid="ignore"):
