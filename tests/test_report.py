@@ -146,6 +146,7 @@ def test_report_of_an_absorbed_model_from_its_file(fleet, capsys):
                  "--absorb", "host_id", "--robust", "HC3", "--out", str(model), "--no-progress"]) == 0
     printed = capsys.readouterr().out
     assert "HC3" in printed and "uncentred" not in printed
+    assert "absorbed host_id: 60 levels as fixed effects" in printed and "R² within levels" in printed
     out = folder / "absorbed.html"
     assert main(["report", str(model), str(data), "--out", str(out), "--cluster", "host_id",
                  "--no-progress"]) == 0
@@ -156,4 +157,5 @@ def test_report_of_an_absorbed_model_from_its_file(fleet, capsys):
     for img in parser.imgs:
         with PIL.open(io.BytesIO(base64.b64decode(img["src"].split(",", 1)[1]))) as im:
             im.verify()
-    assert "cluster:host_id" in out.read_text(encoding="utf-8")
+    html = out.read_text(encoding="utf-8")
+    assert "cluster:host_id" in html and "host_id is absorbed: 60 levels" in html and "R² within levels" in html

@@ -116,6 +116,10 @@ def _data_section(model: FitResult, diag: dict[str, Any], data_description: str)
         out += _table(["file", "bytes"], [[_e(f["path"]), count(int(f["size"]))] for f in shown])
         if len(files) > 12:
             out += f"<p><small>… and {len(files) - 12} more files</small></p>"
+    absorbed = (model.coding or {}).get("absorbed")
+    if absorbed:
+        out += (f"<p>{_e(absorbed['column'])} is absorbed: {count(int(absorbed['levels']))} levels as fixed "
+                "effects, each row checked against its own level's effect.</p>")
     if not diag["same_data"]:
         out += '<p class="flag">The checked rows are not the rows the model was fitted on.</p>'
     return out
@@ -125,7 +129,10 @@ def _accuracy_section(model: FitResult, diag: dict[str, Any]) -> str:
     inf, res = model.inference, diag["residuals"]
     tiles = [
         ("residual sd", sig(inf.residual_std, 5)), ("R²" if inf.centered else "R² (uncentred)", f"{inf.r_squared:.5f}"),
-        ("adjusted R²", f"{inf.adj_r_squared:.5f}"), ("mean absolute error", sig(res["mae"], 5)),
+        ("adjusted R²", f"{inf.adj_r_squared:.5f}"),
+        *([("R² within levels", f"{within:.5f}")] if (within := ((model.coding or {}).get("absorbed") or {})
+                                                       .get("r_squared_within")) is not None else []),
+        ("mean absolute error", sig(res["mae"], 5)),
         ("root mean square error", sig(res["rmse"], 5)), ("trusted digits", f"{model.trusted_digits:.0f}"),
     ]
     out = '<div class="grid">' + "".join(f'<div class="tile">{_e(a)}<b>{b}</b></div>' for a, b in tiles) + "</div>"

@@ -92,6 +92,12 @@ def _design_lines(result: FitResult) -> list[str]:
         for new, olds in (c.get("merged_by_name") or {}).items():
             merged += f", {new!r} = {' + '.join(olds)}"
         lines.append(f"levels of {col}: {len(c['counts'])} seen, {ref}{merged}")
+    absorbed = (result.coding or {}).get("absorbed")
+    if absorbed:
+        within = absorbed.get("r_squared_within")
+        lines.append(f"absorbed {absorbed['column']}: {count(int(absorbed['levels']))} levels as fixed effects "
+                     f"(kept for prediction, not listed)"
+                     + (f"; R² within levels {within:.6f}" if within is not None else ""))
     return [f"design    {lines[0]}"] + [f"          {ln}" for ln in lines[1:]] if lines else []
 
 
