@@ -211,7 +211,13 @@ def test_within_level_vif_and_centred_r_squared(grunfeld):
     df, table = grunfeld
     model = tallfit.fit(table, "invest", FEATURES, absorb="firm")
     ols, _ = _dummy_fit(df)
-    assert model.to_dict()["r_squared_kind"] == "centered"
+    doc = model.to_dict()
+    assert doc["r_squared_kind"] == "centered"
+    assert doc["absorbed"]["column"] == "firm" and doc["absorbed"]["levels"] == 11
+    within = ols.fit()
+    # R² within firms: the dummy fit's residuals against invest centred on each firm's mean
+    centred = df.invest - df.groupby("firm").invest.transform("mean")
+    _close(doc["absorbed"]["r_squared_within"], 1 - np.sum(within.resid**2) / np.sum(centred**2))
     _close(model.inference.r_squared, ols.fit().rsquared)
     within = df[FEATURES].to_numpy(float) - df.groupby("firm")[FEATURES].transform("mean").to_numpy(float)
     Xc = np.column_stack([np.ones(len(df)), within])

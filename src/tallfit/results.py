@@ -106,6 +106,15 @@ class FitResult:
             for i, name in enumerate(self.terms)
         ]
 
+    def absorbed_info(self) -> dict[str, Any] | None:
+        """The absorbed key: column, levels, R² within levels and the rows' mean effect (the
+        effects themselves stay in the model file)."""
+        a = (self.coding or {}).get("absorbed")
+        if not a:
+            return None
+        return {"column": a["column"], "levels": int(a["levels"]), "r_squared_within": a.get("r_squared_within"),
+                "mean_effect": a.get("mean_effect")}
+
     def to_dict(self) -> dict[str, Any]:
         """The machine-readable result (the ``show --json`` contract)."""
         inf = self.inference
@@ -141,6 +150,7 @@ class FitResult:
             "source": self.source,
             "weights": self.weights_info(),
             "levels": self.levels_info(),
+            "absorbed": self.absorbed_info(),
             "filled_values": dict(self.accumulator.filled),
             "warnings": list(self.warnings),
             "robust": self.robust,
