@@ -38,6 +38,17 @@ class DesignBlock:
     def n_used(self) -> int:
         return self.A.shape[0]
 
+    def subset(self, idx: np.ndarray) -> "DesignBlock":
+        """A block of the used rows ``idx`` only (their matrix rows, extra columns, codes and
+        weights; ranges and the row mask left for the caller), from the same batch."""
+        take = pa.array(idx)
+        return DesignBlock(
+            A=np.asfortranarray(self.A[idx]), n_read=int(idx.size), extra={k: v.take(take) for k, v in self.extra.items()},
+            file_index=self.file_index, row_start=self.row_start, names=self.names,
+            row_weights=None if self.row_weights is None else self.row_weights[idx],
+            codes=None if self.codes is None else [c[idx] for c in self.codes], level_sizes=self.level_sizes,
+        )
+
 
 def column_as_float(col: pa.Array | pa.ChunkedArray) -> np.ndarray:
     """A numeric or boolean Arrow column as float64 with NaN for nulls (a copy only when needed)."""

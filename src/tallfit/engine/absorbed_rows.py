@@ -91,14 +91,9 @@ def _leave_out(block, ok: np.ndarray, counts: dict[str, int]) -> None:
     used = np.flatnonzero(block.keep) if block.keep is not None else np.arange(block.A.shape[0])
     keep = np.zeros(block.A.shape[0] if block.keep is None else block.keep.shape[0], dtype=bool)
     keep[used[idx]] = True
+    part = block.subset(idx)
     block.keep = keep
-    block.A = np.asfortranarray(block.A[idx])
-    take = pa.array(idx)
-    block.extra = {k: v.take(take) for k, v in block.extra.items()}
-    if block.codes is not None:
-        block.codes = [c[idx] for c in block.codes]
-    if block.row_weights is not None:
-        block.row_weights = block.row_weights[idx]
+    block.A, block.extra, block.codes, block.row_weights = part.A, part.extra, part.codes, part.row_weights
     block.col_min = block.col_max = None  # the ranges of rows no longer all here
     for reason, n in counts.items():
         if n:

@@ -46,15 +46,27 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
     sums = {k: PartSums(plans[k], source) for k in models}
     read = list(dict.fromkeys(spec.input_columns + list(grouped.by) + cluster))
 
+    by = list(grouped.by)
+    # without categoricals every group has the same design: one block per batch, split by group;
+    # else each group's rows through its own coding
+    shared = None if spec.categorical else Design(spec, coding=first.coding)
+
     def blocks():
         for chunk in source.batches(read, batch_rows):
             batch = chunk.batch
             label = chunk_label(source, chunk)
-            for key, idx in group_rows([batch.column(c) for c in grouped.by]):
-                if key in designs:
-                    block = designs[key].block(batch.take(pa.array(idx)), label, extra_columns=cluster)
-                    block.file_index, block.row_start = chunk.file_index, chunk.row_start
-                    yield key, block
+            if shared is not None:
+                whole = shared.block(batch, label, extra_columns=list(dict.fromkeys(by + cluster)))
+                whole.file_index, whole.row_start = chunk.file_index, chunk.row_start
+                for key, idx in group_rows([whole.extra[c] for c in by]):
+                    if key in designs:
+                        yield key, whole.subset(idx)
+            else:
+                for key, idx in group_rows([batch.column(c) for c in by]):
+                    if key in designs:
+                        block = designs[key].block(batch.take(pa.array(idx)), label, extra_columns=cluster)
+                        block.file_index, block.row_start = chunk.file_index, chunk.row_start
+                        yield key, block
             if progress is not None:
                 progress(batch.num_rows, chunk.file_index)
 
