@@ -97,7 +97,7 @@ class _Scorer:
         self.lo, self.hi = np.asarray(lo), np.asarray(hi)
         self.first = 1 if spec.has_intercept_column else 0
         self.absorbed = (model.coding or {}).get("absorbed")
-        self._lookup = None  # (level coder, effects) of the absorbed key, made at the first batch
+        self._key_coder = None  # the absorbed key's level coder, made at the first batch (its key type)
         self.unseen = unseen
         if intervals and not np.all(np.isfinite(model.inference.std_error)):
             raise DesignError(
@@ -110,23 +110,25 @@ class _Scorer:
                 "file lacks; fit it again with this version, or predict without intervals"
             )
         self.n_features = len(spec.features)
+        # an absorbed key: its effects and, with intervals, ŷ = α_g + xᵀβ of variance
+        # σ²(1/n_g + ‖R11⁻ᵀ(x − x̄_g)‖²), the leverage of the fit with one indicator per level
+        self.z_absorbed = None
+        R11_inv = None
         if intervals:
             # se_fit = s·‖zᵢ‖ with zᵢ = R11⁻ᵀxᵢ: one product of the rows with R11⁻¹ (put at the kept
             # columns' rows), as in the second pass (engine/pass_sums.py), plus the levels' rows
             p = len(self.keep)
-            R11 = reduce_factor(model.accumulator.R, self.keep)[:p, :p]
+            R11_inv = upper_inverse(reduce_factor(model.accumulator.R, self.keep)[:p, :p])
             full = np.zeros((len(names), p))
-            full[self.keep] = upper_inverse(R11)
+            full[self.keep] = R11_inv
             self.z_dense = np.asfortranarray(full[: self.dense])
             self.z_levels = level_tables(full, self.dense, widths)
-            # an absorbed key: ŷ = α_g + xᵀβ has variance σ²(1/n_g + ‖R11⁻ᵀ(x − x̄_g)‖²), the
-            # leverage of the fit with one indicator per level (engine/absorbed_rows.py)
-            self.z_absorbed = None
-            if self.absorbed:
-                rows = AbsorbedRows(self.absorbed, upper_inverse(R11))
-                self.z_absorbed = (np.asfortranarray(rows.table[:, :p]), rows.inv_size)
             self.s = model.inference.residual_std
             self.q = float(t_ppf(0.5 + level / 2.0, model.inference.df_resid))
+        self._absorbed_rows = AbsorbedRows(self.absorbed, R11_inv) if self.absorbed else None
+        if self.absorbed and intervals:
+            rows = self._absorbed_rows
+            self.z_absorbed = (np.asfortranarray(rows.table[:, : len(self.keep)]), rows.inv_size)
 
     def score(self, batch: pa.RecordBatch, report: PredictionReport, label: str) -> dict[str, np.ndarray]:
         X, ok, codes = self.design.features(batch, label)
@@ -185,16 +187,12 @@ class _Scorer:
         allowed; their id is the model's level count or more).
         Rows find their level through a discovering level coder seeded with the model's levels in
         order (ids below their count are known levels): hashing per distinct label, not per row."""
-        from tallfit.design.categorical import level_seed, level_strings, seeded_coder
+        from tallfit.design.categorical import level_strings
 
-        if self._lookup is None:
-            effects = self.absorbed["effects"]
-            levels = list(effects)
-            coder = seeded_coder(self.absorbed["column"], level_seed(levels, keys.type))
-            values = np.fromiter(effects.values(), dtype=float, count=len(levels))
-            self._lookup = (coder, values)
-        coder, values = self._lookup
-        codes = coder.codes(keys, label)  # any key type: the coder's own paths
+        if self._key_coder is None:
+            self._key_coder = self._absorbed_rows.coder(keys.type)
+        values = self._absorbed_rows.alpha
+        codes = self._key_coder.codes(keys, label)  # any key type: the coder's own paths
         known = (codes >= 0) & (codes < len(values))
         out = np.empty(len(codes))
         out[known] = values[codes[known]]

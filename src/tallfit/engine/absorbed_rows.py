@@ -32,23 +32,31 @@ ALONE = 1.0 - 1e-9  # a row's share wᵢ/W_g of its level from which it is the l
 
 
 class AbsorbedRows:
-    """The model's level table for the pass, and each block's level codes (rows it cannot use left out)."""
+    """The model's absorbed levels: their effects, a level coder for any key column, and (given
+    R11⁻¹) the level table and leverage shares of the second pass and of intervals."""
 
-    def __init__(self, absorbed: dict, R11_inv: np.ndarray) -> None:
+    def __init__(self, absorbed: dict, R11_inv: np.ndarray | None = None) -> None:
         self.column = absorbed["column"]
         self.levels = list(absorbed["effects"])
-        G, p = len(self.levels), R11_inv.shape[0]
-        alpha = np.fromiter(absorbed["effects"].values(), dtype=float, count=G)
+        G = len(self.levels)
+        self.alpha = alpha = np.fromiter(absorbed["effects"].values(), dtype=float, count=G)
+        self._seeds: dict[str, pa.Array | None] = {}
+        self._lock = threading.Lock()
+        if R11_inv is None:  # effects only (scoring without intervals; older model files)
+            return
+        p = R11_inv.shape[0]
         sizes = np.asarray(absorbed["sizes"], dtype=float)  # rows, or weight sums when weighted
         means = np.asarray(absorbed["means"], dtype=float).reshape(G, p)
-        self.alpha = alpha
         self.inv_size = 1.0 / sizes
         # rows 0, 1 for the codes −2 and −1 (never used here), as kernels.level_tables lays out
         self.table = np.zeros((G + 2, p + 1), order="F")
         self.table[2:, :p] = -(means @ R11_inv)
         self.table[2:, p] = -alpha
-        self._seeds: dict[str, pa.Array | None] = {}
-        self._lock = threading.Lock()
+
+    def coder(self, key_type: pa.DataType):
+        """A fresh level coder whose ids below len(levels) are the model's levels (one per stream
+        or per scorer: coders are not shared between threads)."""
+        return seeded_coder(self.column, self._seed(key_type))
 
     def _seed(self, key_type: pa.DataType) -> pa.Array | None:
         kind = "int" if pa.types.is_integer(key_type) and not pa.types.is_uint64(key_type) else "str"
@@ -66,7 +74,7 @@ class AbsorbedRows:
         for block in blocks:
             keys = block.extra[self.column]
             if coder is None:
-                coder = seeded_coder(self.column, self._seed(keys.type))
+                coder = self.coder(keys.type)
             where = span_label(source, block.file_index, block.row_start, block.n_read)
             codes = coder.codes(keys, where)
             known = (codes >= 0) & (codes < G)

@@ -42,14 +42,14 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
     plans = {k: PassPlan(m, cluster, (), False, 0, robust) for k, m in models.items()}
-    designs = {k: Design(spec, coding=m.coding, level_codes=plans[k].level_codes) for k, m in models.items()}
     sums = {k: PartSums(plans[k], source) for k in models}
-    read = list(dict.fromkeys(spec.input_columns + list(grouped.by) + cluster))
-
     by = list(grouped.by)
+    read = list(dict.fromkeys(spec.input_columns + by + cluster))
     # without categoricals every group has the same design: one block per batch, split by group;
     # else each group's rows through its own coding
     shared = None if spec.categorical else Design(spec, coding=first.coding)
+    designs = {} if shared is not None else {
+        k: Design(spec, coding=m.coding, level_codes=plans[k].level_codes) for k, m in models.items()}
 
     def blocks():
         for chunk in source.batches(read, batch_rows):
@@ -59,7 +59,7 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
                 whole = shared.block(batch, label, extra_columns=list(dict.fromkeys(by + cluster)))
                 whole.file_index, whole.row_start = chunk.file_index, chunk.row_start
                 for key, idx in group_rows([whole.extra[c] for c in by]):
-                    if key in designs:
+                    if key in sums:
                         yield key, whole.subset(idx)
             else:
                 for key, idx in group_rows([batch.column(c) for c in by]):
