@@ -146,3 +146,22 @@ def test_a_group_with_one_cluster_gets_a_note_not_a_failure():
     assert g.groups["early"].robust is None and g.groups["late"].robust is not None
     assert any("at least 2 clusters" in w for w in g.groups["early"].warnings)
     assert "no robust errors for this group" in g.summary()
+
+
+def test_group_robust_errors_with_frequency_weights_equal_repeated_rows():
+    """Frequency weights 1, 2, 3, … (ours) per era: firm-clustered and HC3 errors equal statsmodels
+    on that era's rows repeated w times."""
+    d, table = _grunfeld_eras()
+    r = np.arange(len(d)) % 3 + 1
+    table = table.append_column("n", pa.array(r.astype(float)))
+    for opts, kind in (({"robust": "HC3"}, "HC3"), ({"cluster": "firm"}, "cluster:firm")):
+        g = tallfit.fit(table, "invest", ["value", "capital"], by="era", weights="n", weight_kind="frequency",
+                        batch_rows=17, **opts)
+        for key in ("early", "late"):
+            sel = (d.era == key).to_numpy()
+            reps = r[sel]
+            X = np.repeat(sm.add_constant(d[["value", "capital"]].to_numpy(float)[sel]), reps, axis=0)
+            ols = sm.OLS(np.repeat(d.invest.to_numpy(float)[sel], reps), X)
+            ref = (ols.fit(cov_type="HC3") if kind == "HC3" else
+                   ols.fit(cov_type="cluster", cov_kwds={"groups": np.repeat(d.firm.factorize()[0][sel], reps)}))
+            np.testing.assert_allclose(g.groups[key].robust["estimators"][kind]["std_error"], ref.bse, rtol=1e-9)

@@ -253,25 +253,3 @@ def test_analytic_weights_match_statsmodels_wls(kind):
     model = tallfit.fit(table, "AVGEXP", feats, weights="w", robust=kind, batch_rows=16)
     ref = sm.WLS(d.AVGEXP.to_numpy(float), sm.add_constant(d[feats].to_numpy(float)), weights=w).fit(cov_type=kind)
     _close(model.robust["estimators"][kind]["std_error"], ref.bse)
-
-
-def test_frequency_weights_refuse_robust_errors_before_the_pass(monkeypatch):
-    """A row of frequency weight w stands for w rows; the pass does not expand them, so rather
-    than a wrong answer robust errors are refused, before any pass is made."""
-    import tallfit.engine.second_pass as sp_mod
-
-    d = sm.datasets.ccard.load_pandas().data
-    table = pa.table({"AVGEXP": d.AVGEXP.to_numpy(float), "AGE": d.AGE.to_numpy(float),
-                      "w": np.ones(len(d)) * 2.0})
-    calls = []
-    monkeypatch.setattr(sp_mod, "second_pass", lambda *a, **k: calls.append(1))
-    with pytest.raises(DesignError, match="frequency weights"):
-        tallfit.fit(table, "AVGEXP", ["AGE"], weights="w", weight_kind="frequency", robust="HC1")
-    assert not calls
-    monkeypatch.undo()
-    from tallfit.api import diagnose
-
-    model = tallfit.fit(table, "AVGEXP", ["AGE"], weights="w", weight_kind="frequency")
-    out = diagnose(model, table)  # the residual checks still run; robust errors are left out, with the reason
-    assert out["model"].robust is None
-    assert any("frequency weights" in a for a in out["diagnostics"]["advice"])

@@ -231,7 +231,7 @@ def diagnose(
     """
     from tallfit.diagnostics.assemble import build_diagnostics, same_data
     from tallfit.engine.second_pass import second_pass
-    from tallfit.solve.robust import check_kind, robust_for_model, robust_refusal
+    from tallfit.solve.robust import check_kind, robust_for_model
 
     check_kind(robust)
     from tallfit.grouped import GroupedFit
@@ -241,11 +241,9 @@ def diagnose(
     source = as_source(data, format=format, delimiter=delimiter)
     sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep), robust=robust,
                      batch_rows=batch_rows, progress=progress)
-    if same_data(model, sp) and not robust_refusal(model):  # else the report says why there are none
+    if same_data(model, sp):
         model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
     diag = build_diagnostics(model, sp, bins=bins, robust=model.robust)
-    if robust_refusal(model):
-        diag["advice"].append(robust_refusal(model))
     return {"model": model, "diagnostics": diag, "source": source.describe()}
 
 

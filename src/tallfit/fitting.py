@@ -22,12 +22,9 @@ def with_robust(result: FitResult, source, robust, cluster, batch_rows, progress
     if not robust and not cluster:
         return result
     from tallfit.engine.second_pass import second_pass
-    from tallfit.errors import DesignError
-    from tallfit.solve.robust import check_kind, robust_for_model, robust_refusal
+    from tallfit.solve.robust import check_kind, robust_for_model
 
     check_kind(robust)
-    if robust_refusal(result):  # before the pass, not after it
-        raise DesignError(robust_refusal(result))
     sp = second_pass(result, source, cluster=cluster_list(cluster), robust=robust, diagnostics=False,
                      batch_rows=batch_rows, progress=progress)
     result.robust = robust_for_model(result, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)

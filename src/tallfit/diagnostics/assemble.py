@@ -18,8 +18,13 @@ SAME_DATA_TOL = 1e-6  # max |Σ zᵢeᵢ|/‖e‖: ~1e-13 on the fitting data, o
 
 def same_data(model: "FitResult", sp: "SecondPass") -> bool:
     """Whether the pass read the rows the model was fitted on (normal equations hold, counts agree;
-    rows of one-row absorbed levels, which the fit matches exactly, are left out of the pass)."""
-    if sp.n_used + sp.rows_exact != model.inference.n_used:
+    rows of one-row absorbed levels, which the fit matches exactly, are left out of the pass;
+    with frequency weights the counts are of the rows the weighted rows stand for)."""
+    spec = model.spec
+    n = sp.n_used
+    if spec.weights and spec.weight_kind == "frequency" and sp.sandwich is not None:
+        n = int(round(sp.sandwich.n))
+    if n + sp.rows_exact != model.inference.n_used:
         return False
     exact = model.solver.startswith("householder")  # an iterative solution leaves Σ zᵢeᵢ ≠ 0
     return not exact or sp.sandwich.normal_equations_residual() < SAME_DATA_TOL

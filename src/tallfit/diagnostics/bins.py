@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from tallfit.diagnostics.kernels import grid_bin_sums_rows
+from tallfit.diagnostics.kernels import grid_bin_sums_rows, grid_bin_sums_weighted
 
 GRID_CELLS = 1024
 TAIL = 0.0005  # a sample of part of the data sets the grid between its 0.05 % and 99.95 % points
@@ -89,14 +89,23 @@ class BinnedSums:
 
     def update(self, A: np.ndarray, e: np.ndarray, cols: np.ndarray | None = None,
                kbuf: np.ndarray | None = None,
-               ranges: tuple[np.ndarray, np.ndarray] | None = None) -> None:
+               ranges: tuple[np.ndarray, np.ndarray] | None = None, w: np.ndarray | None = None) -> None:
         """Fold the rows of A's columns ``cols`` (all by default) with their residuals e (indexed
         like A's rows). ``ranges``: the minimum and maximum of each of A's columns when the caller
-        has them (a design block does), else numpy measures them."""
+        has them (a design block does), else numpy measures them. ``w``: frequency weights, each
+        row counted wᵢ times (rows of weight 0 leave the ranges alone too)."""
         m = A.shape[0]
         if m == 0:
             return
         cols = np.arange(A.shape[1], dtype=np.int64) if cols is None else np.asarray(cols, dtype=np.int64)
+        if w is not None:
+            counted = A[w > 0]
+            if counted.shape[0]:
+                np.minimum(self.lo_seen, counted[:, cols].min(axis=0), out=self.lo_seen)
+                np.maximum(self.hi_seen, counted[:, cols].max(axis=0), out=self.hi_seen)
+            grid_bin_sums_weighted(A, cols, e, w, self.grid.lo, self.grid.scale, self.grid.cells, self.sums,
+                                   np.empty(m, dtype=np.int32))
+            return
         if ranges is None:
             ranges = (A.min(axis=0), A.max(axis=0))
         np.minimum(self.lo_seen, ranges[0][cols], out=self.lo_seen)
@@ -132,7 +141,7 @@ class BinnedSums:
         with np.errstate(invalid="ignore", divide="ignore"):
             var = np.where(count > 1, (se2 - count * mean_e**2) / (count - 1), np.nan)
         return BinnedSummary(
-            count=count.astype(np.int64),
+            count=np.rint(count).astype(np.int64),  # weight sums with frequency weights
             x_mean=sx / count,
             x_low=arr[:, 4],
             x_high=arr[:, 5],

@@ -29,7 +29,7 @@ class BreuschPaganSums:
     p: int
     intercept: bool
     g: np.ndarray  # Σ zᵢ uᵢ
-    n: int = 0
+    n: float = 0  # rows (with frequency weights, their weight sum)
     mean: float = 0.0
     m2: float = 0.0  # Σ (uᵢ − ū)²
     centred: bool = False  # terms centred on an absorbed key's levels (no intercept column)
@@ -38,16 +38,24 @@ class BreuschPaganSums:
     def create(cls, p: int, intercept: bool, centred: bool = False) -> "BreuschPaganSums":
         return cls(p, intercept, np.zeros(p), centred=centred)
 
-    def add_squares(self, e: np.ndarray) -> None:
+    def add_squares(self, e: np.ndarray, w: np.ndarray | None = None) -> None:
         """Fold one block's uᵢ = eᵢ² into the centred sums (``g`` gets Σ zᵢuᵢ from
-        kernels.tile_scores, in the same sweep as the sandwich scores)."""
+        kernels.tile_scores, in the same sweep as the sandwich scores); with frequency weights
+        ``w`` each row stands for wᵢ rows (n is then Σw)."""
         m = len(e)
         if m == 0:
             return
-        mb, m2b = square_moments(e)
-        self._combine(m, mb, m2b)
+        if w is None:
+            mb, m2b = square_moments(e)
+            self._combine(m, mb, m2b)
+            return
+        W = float(w.sum())
+        if W > 0:
+            u = e * e
+            mb = float(w @ u) / W
+            self._combine(W, mb, float(w @ (u - mb) ** 2))
 
-    def _combine(self, m: int, mb: float, m2b: float) -> None:
+    def _combine(self, m: float, mb: float, m2b: float) -> None:
         n = self.n + m
         delta = mb - self.mean
         self.m2 += m2b + delta * delta * self.n * m / n

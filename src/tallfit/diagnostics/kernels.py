@@ -8,6 +8,7 @@
   the cell of every row on a uniform grid and, per cell, the row count, Σx, Σe and Σe² (a multiply
   and one 4-wide add per value: measured ≈ 1.4 ns per value here, against ≈ 13 ns for sample-quantile
   edges found through a lookup table and ≈ 30 ns by binary search, whose branches mispredict).
+* ``grid_bin_sums_weighted``: the same sums with a frequency weight per row.
 * ``square_moments``: mean and centred sum of squares of e² (one block, two sweeps).
 * ``grid_index``: the grid cell of each value of one column (fitted values, residuals).
 * ``scatter_rows``: S[code[i], :] += W[i, :] (cluster score sums).
@@ -65,6 +66,23 @@ def grid_bin_sums_rows(A, r0, r1, cols, e, lo, scale, cells, out, kbuf):
         for i in range(a.shape[0]):
             r = ev[i]
             add4(o, kb[i], 1.0, a[i], r, r * r)  # one 4-wide update: kernels/lanes.py
+
+
+@numba.njit(cache=True, nogil=True, fastmath=_FAST)
+def grid_bin_sums_weighted(A, cols, e, w, lo, scale, cells, out, kbuf):
+    """out[j, k] += wᵢ·(1, x, e, e²) over the rows of column cols[j] of A in grid cell k: each row
+    stands for wᵢ rows (frequency weights; a plain pass uses ``grid_bin_sums_rows``)."""
+    for j in range(cols.shape[0]):
+        a = A[:, cols[j]]
+        lj = lo[j]
+        sj = scale[j]
+        for i in range(a.shape[0]):
+            kbuf[i] = _cell(a[i], lj, sj, cells)
+        o = out[j]
+        for i in range(a.shape[0]):
+            wi = w[i]
+            r = e[i]
+            add4(o, kbuf[i], wi, wi * a[i], wi * r, wi * r * r)
 
 
 @numba.njit(cache=True, nogil=True)

@@ -14,7 +14,7 @@ from typing import Any
 
 import numpy as np
 
-from tallfit.diagnostics.kernels import residual_moments
+from tallfit.diagnostics.kernels import grid_index, residual_moments
 from tallfit.solve.distributions import norm_ppf
 
 CELLS = 4800
@@ -29,7 +29,7 @@ class ResidualSketch:
     scale_sd: float
     hist: np.ndarray = field(default=None)  # type: ignore[assignment]
     sums: np.ndarray = field(default=None)  # type: ignore[assignment]
-    n: int = 0
+    n: float = 0  # residuals folded (with frequency weights, their weight sum)
 
     def __post_init__(self) -> None:
         sd = self.scale_sd if self.scale_sd > 0 and np.isfinite(self.scale_sd) else 1.0
@@ -47,9 +47,23 @@ class ResidualSketch:
     def width(self) -> float:
         return 2.0 * SPAN * self.scale_sd / CELLS
 
-    def update(self, e: np.ndarray) -> None:
-        residual_moments(e, self.lo, 1.0 / self.width, CELLS, self.hist, self.sums)
-        self.n += len(e)
+    def update(self, e: np.ndarray, w: np.ndarray | None = None) -> None:
+        """Fold residuals e; with frequency weights ``w`` each stands for wᵢ residuals (the
+        histogram then holds weight sums)."""
+        if w is None:
+            residual_moments(e, self.lo, 1.0 / self.width, CELLS, self.hist, self.sums)
+            self.n += len(e)
+            return
+        cells = np.empty(len(e), dtype=np.int32)
+        grid_index(e, self.lo, 1.0 / self.width, CELLS, cells)
+        self.hist = self.hist + np.bincount(cells, weights=w, minlength=CELLS + 2)
+        e2 = e * e
+        self.sums[:4] += [w @ np.abs(e), w @ e2, w @ (e2 * e), w @ (e2 * e2)]
+        counted = e[w > 0]
+        if counted.size:
+            self.sums[4] = min(self.sums[4], counted.min())
+            self.sums[5] = max(self.sums[5], counted.max())
+        self.n += float(w.sum())
 
     def merge(self, other: "ResidualSketch") -> "ResidualSketch":
         s = self.sums + other.sums
@@ -81,7 +95,7 @@ class ResidualSketch:
         a1, a2, a3, a4, mn, mx = self.sums
         sd = np.sqrt(a2 / n) if n else float("nan")
         return {
-            "n": int(n),
+            "n": int(round(n)),
             "mae": float(a1 / n) if n else float("nan"),
             "rmse": float(sd),
             "skewness": float(a3 / n / sd**3) if n and sd > 0 else float("nan"),

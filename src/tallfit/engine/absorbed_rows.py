@@ -12,7 +12,8 @@ clustered errors equal that fit's, with k = p + (levels) in the small-sample fac
 
 Rows the pass cannot use are left out and counted: a level the model never saw (its effect is
 unknown; only on other data) and a level of one row, which the fit matches exactly (eᵢ = 0,
-hᵢ = 1, found as wᵢ/W_g = 1): such a row adds nothing to any sandwich and leaves n − k unchanged,
+hᵢ = 1, found as wᵢ/W_g = 1; with frequency weights, 1/W_g = 1, a level of one row of
+weight 1): such a row adds nothing to any sandwich and leaves n − k unchanged,
 since its level is one parameter less (the common practice of dropping singleton levels).
 """
 
@@ -35,7 +36,8 @@ class AbsorbedRows:
     """The model's absorbed levels: their effects, a level coder for any key column, and (given
     R11⁻¹) the level table and leverage shares of the second pass and of intervals."""
 
-    def __init__(self, absorbed: dict, R11_inv: np.ndarray | None = None) -> None:
+    def __init__(self, absorbed: dict, R11_inv: np.ndarray | None = None, frequency: bool = False) -> None:
+        self.frequency = frequency  # weights count rows: a row's share is that of one of its w rows
         self.column = absorbed["column"]
         self.levels = list(absorbed["effects"])
         G = len(self.levels)
@@ -80,7 +82,7 @@ class AbsorbedRows:
             known = (codes >= 0) & (codes < G)
             share = np.zeros(len(codes))
             share[known] = self.inv_size[codes[known]]
-            if block.row_weights is not None:
+            if block.row_weights is not None and not self.frequency:
                 share *= block.row_weights
             ok = known & (share < ALONE)
             if not ok.all():

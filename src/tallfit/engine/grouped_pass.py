@@ -26,14 +26,12 @@ from tallfit.kernels.lapack_calls import single_blas_thread
 def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] = (),
                    batch_rows: int = DEFAULT_BATCH_ROWS, progress: ProgressHook | None = None) -> None:
     """Set ``robust`` on every group's model from one pass over ``data`` (its fitting data)."""
-    from tallfit.solve.robust import check_kind, cluster_keys, robust_for_model, robust_refusal
+    from tallfit.solve.robust import check_kind, cluster_keys, robust_for_model
 
     check_kind(robust)
     cluster = cluster_keys(cluster)
     models = grouped.groups
     first = next(iter(models.values()))
-    if robust_refusal(first):
-        raise DesignError(robust_refusal(first))
     spec = first.spec
     source = as_source(data)
     where = source_label(source)

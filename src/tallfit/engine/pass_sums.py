@@ -101,9 +101,17 @@ class PassPlan:
         self.robust = robust
         self._maps: dict[int, np.ndarray] = {}
         coding = model.coding or {}
+        # weighted rows arrive scaled by √w: residuals are then √w·e (the sandwich wants exactly
+        # that); binned summaries divide the rows by √w again (the blocks carry each row's w)
+        self.weighted = bool(getattr(spec, "weights", None))
+        # frequency weights: a row of weight w stands for w equal rows. Each tile's rows of Z are
+        # divided by √wᵢ, so ‖zᵢ‖² is the leverage of one of those rows and eᵢ(√wᵢ)·zᵢ the
+        # sandwich row whose square is the wᵢ rows' share of the meat; cluster sums take the
+        # scores times √wᵢ (wᵢ·eᵢzᵢ, the rows' sum), counts are Σw, the bins weight sums
+        self.frequency = self.weighted and getattr(spec, "weight_kind", "analytic") == "frequency"
         # an absorbed key: each row's level adds its row [−x̄_gᵀR11⁻¹ | −α_g] (times √wᵢ when
         # weighted) to [Z | e] by a gather, and wᵢ/W_g to the leverage (engine/absorbed_rows.py)
-        self.absorbed = AbsorbedRows(coding["absorbed"], self.R11_inv) if spec.absorb else None
+        self.absorbed = AbsorbedRows(coding["absorbed"], self.R11_inv, self.frequency) if spec.absorb else None
         # categoricals (unweighted): blocks come without indicator columns (level codes instead);
         # [Z | e] is then the product of the dense columns with their rows of the tile map plus,
         # per categorical, the map's row of each row's level (one gather instead of a product
@@ -120,9 +128,6 @@ class PassPlan:
         self.features = [f for f in spec.features if f in model.terms]
         self.fcols = np.asarray([names.index(f) for f in self.features], dtype=np.int64)
         self.intercept = bool(spec.has_intercept_column and names[0] in model.terms)
-        # weighted rows arrive scaled by √w: residuals are then √w·e (the sandwich wants exactly
-        # that); binned summaries divide the rows by √w again (the blocks carry each row's w)
-        self.weighted = bool(getattr(spec, "weights", None))
         self.diagnostics = diagnostics
         self.cluster, self.keep, self.top_k = list(cluster), list(keep), top_k
         s = model.inference.residual_std
@@ -268,6 +273,10 @@ class PartSums:
         if absorbed is not None:
             self._levels[block.key_codes] = True
         root_w = np.sqrt(block.row_weights) if absorbed is not None and plan.weighted else None
+        freq = plan.frequency
+        if freq:  # 1/√wᵢ (0 for rows of weight 0, whose scaled rows are 0) and √wᵢ
+            root = np.sqrt(block.row_weights)
+            inv_root = np.divide(1.0, root, out=np.zeros(m), where=root > 0)
         y = A[:, A.shape[1] - 1]
         mode = sandwich.mode
         in_place = self._in_place
@@ -287,17 +296,26 @@ class PartSums:
                 gather_add_scaled(block.key_codes, a, absorbed.table, ZE, root_w)
             elif absorbed is not None:
                 gather_add(block.key_codes, a, absorbed.table, ZE)
-            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, sandwich.score_sum, not in_place, h0)
+            score_sum = sandwich.score_sum
+            if freq:  # Σ wᵢeᵢzᵢ as the fit saw it, then each row of Z as one of its wᵢ rows'
+                sandwich.score_sum += ZE[:, :p].T @ ZE[:, p]
+                ZE[:, :p] *= inv_root[a:b, None]
+                score_sum = np.zeros(p)
+            tile_scores(ZE, b - a, a, y, mode, V, e, fitted, h, bp.g, score_sum, not in_place, h0)
             W = ZE[:, :p]  # the scores (or the sandwich rows when in_place)
             sandwich.add_rows(W if in_place else V)
+            if freq and codes:  # a row's wᵢ rows add wᵢ·eᵢzᵢ to their cluster
+                W = W * root[a:b, None]
             for c, sums, g in zip(codes, out.clusters, groups):
                 sums.update(c[a:b], W, g)
-        sandwich.add_residuals(e, h)
+        sandwich.add_residuals(e, h, float(block.row_weights.sum()) if freq else None)
         if bin_here:  # per block, column by column (measured ≈ 35 % less time than per tile, whose
             # other buffers pushed the 21 cell tables of 33 KB out of the core's L2)
             known = block.col_min is not None and block.col_max is not None
             out.feature_bins.update(A, e, plan.fcols, ka, ranges=(block.col_min, block.col_max) if known else None)
-        bp.add_squares(e)
+        if freq:  # the data's own residuals, each standing for wᵢ rows
+            e = e * inv_root
+        bp.add_squares(e, block.row_weights if freq else None)
         out.n_used += m
         if plan.diagnostics:
             self._diagnose(block, A, e, fitted, h, ka, kb)
@@ -306,16 +324,21 @@ class PartSums:
 
     def _diagnose(self, block, A, e, fitted, h, ka, kb) -> None:
         out, plan = self.out, self.plan
-        if plan.weighted:  # back to the data's own units; e stays √w·e (a Pearson residual)
-            A = unscaled(block)
+        w = block.row_weights if plan.frequency else None  # counts of rows each row stands for
+        if plan.weighted:  # back to the data's own units; e stays √w·e (a Pearson residual) for
+            A = unscaled(block)  # analytic weights, and is the plain residual for frequency ones
             fitted = plan.fitted_values(block, A)
-            out.feature_bins.update(A, e, plan.fcols, ka)
-        out.fitted_bins.update(fitted[:, None], e, None, ka)
+            out.feature_bins.update(A, e, plan.fcols, ka, w=w)
+        out.fitted_bins.update(fitted[:, None], e, None, ka, w=w)
         ax = out.heat_axes
         grid_index(fitted, ax["fitted_lo"], ax["fitted_scale"], HEAT_CELLS, ka)
         grid_index(e, ax["resid_lo"], ax["resid_scale"], HEAT_CELLS, kb)
-        grid_counts(ka, kb, out.heat)
-        out.residuals.update(e)
+        if w is None:
+            grid_counts(ka, kb, out.heat)
+        else:
+            out.heat = out.heat + np.bincount(ka * (HEAT_CELLS + 2) + kb, weights=w,
+                                              minlength=(HEAT_CELLS + 2) ** 2).reshape(out.heat.shape)
+        out.residuals.update(e, w)
         detail = self._detail(block, e, fitted, h)
         out.top_residuals.update(np.abs(e), detail)
         out.top_leverage.update(h, detail)

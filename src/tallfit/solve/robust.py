@@ -61,7 +61,7 @@ class SandwichSums:
 
     p: int
     mode: int = SCORES_HC3
-    n: int = 0
+    n: float = 0  # rows (with frequency weights, their weight sum)
     gram: np.ndarray = None  # type: ignore[assignment]  # (p × p, or 2p × 2p for "all")
     score_sum: np.ndarray = None  # type: ignore[assignment]
     rss: float = 0.0
@@ -82,10 +82,11 @@ class SandwichSums:
         """Fold a tile's sandwich rows (from kernels.tile_scores, which also adds to ``score_sum``)."""
         cross_products(V, out=self.gram)  # ≈ 3× faster than BLAS syrk on these shapes
 
-    def add_residuals(self, e: np.ndarray, h: np.ndarray) -> None:
-        """Count a block's rows: residuals e and leverages h."""
+    def add_residuals(self, e: np.ndarray, h: np.ndarray, count: float | None = None) -> None:
+        """Count a block's rows: residuals e and leverages h (``count``: the rows they stand for,
+        Σw with frequency weights)."""
         self.rss += float(e @ e)
-        self.n += len(e)
+        self.n += len(e) if count is None else count
         if len(h):
             self.max_leverage = max(self.max_leverage, float(h.max()))
 
@@ -275,7 +276,7 @@ def robust_results(
     that term's k."""
     n, p = sums.n, sums.p
     if n <= p + swept:
-        raise DesignError(f"{n} rows for {p + swept} parameters: robust errors need more rows than parameters")
+        raise DesignError(f"{n:g} rows for {p + swept} parameters: robust errors need more rows than parameters")
     estimators = {k: coefficient_table(beta, hc_covariance(R11, sums, k, swept), n - p - swept, level)
                   for k in sums.kinds}
     notes: list[str] = []
@@ -309,7 +310,7 @@ def robust_results(
     return {
         "selected": selected,
         "conf_level": float(level),
-        "n_used": int(n),
+        "n_used": int(round(n)),
         "max_leverage": float(sums.max_leverage),
         "clusters": info,
         "estimators": estimators,
@@ -317,27 +318,11 @@ def robust_results(
     }
 
 
-def robust_refusal(model) -> str | None:
-    """Why a model's robust errors cannot be computed from the second pass, or None."""
-    spec = getattr(model, "spec", None)
-    if spec is not None and spec.weights and spec.weight_kind == "frequency":
-        return (
-            "robust and clustered errors with frequency weights are not available yet: a row of "
-            "weight w stands for w rows, whose leverages and count the second pass does not expand; "
-            "use analytic weights (--weight-kind analytic) or expand the rows"
-        )
-    return None
-
-
 def robust_for_model(model, sums: SandwichSums, clusters: list[ClusterSums], selected: str | None,
                      swept: int = 0) -> dict[str, Any]:
     """``robust_results`` for a fitted model, with the largest ratio of robust to plain errors
     (``swept``: the absorbed levels the pass used, SecondPass.levels_used)."""
     from tallfit.solve.exact import reduce_factor
-
-    refusal = robust_refusal(model)
-    if refusal:
-        raise DesignError(refusal)
 
     names = model.accumulator.names[:-1]  # the fitted design's columns, categorical indicators included
     cols = [names.index(t) for t in model.terms]
