@@ -212,3 +212,33 @@ def test_weighted_model_without_intercept_bins_rows_in_their_own_units():
         np.testing.assert_allclose(sums[:, 1].sum(), d[f].sum(), rtol=1e-12)
         np.testing.assert_allclose(sums[:, 3].sum(), np.sum(ref.wresid**2), rtol=1e-9)
     assert len(build_diagnostics(model, sp)["features"]) == 2
+
+
+def test_rows_are_named_by_their_place_when_a_filter_drops_rows(tmp_path):
+    """With --where, the largest residuals and a failing row are named by their row in the file
+    (the filter's rows out counted), not by their place among the rows kept (a property: the id
+    column holds each row's number)."""
+    import pyarrow.parquet as pq
+
+    from tallfit.errors import DataSourceError
+
+    t = _line_data(5, 3000, quadratic=0.0, noise=1.0)
+    t = t.append_column("id", pa.array(np.arange(3000))).append_column("odd", pa.array(np.arange(3000) % 2))
+    y = t["power"].to_numpy().copy()
+    y[[1777, 2000]] += 500.0  # 1777 kept by the filter, 2000 filtered out
+    t = t.set_column(t.schema.get_field_index("power"), "power", pa.array(y))
+    pq.write_table(t, tmp_path / "d.parquet", row_group_size=700)
+    model = tallfit.fit(tmp_path / "d.parquet", target="power", features=["load", "temp"], where="odd = 1",
+                        batch_rows=500)
+    sp = second_pass(model, tmp_path / "d.parquet", keep=["id"], top_k=3, batch_rows=500)
+    top = build_diagnostics(model, sp)["top_residuals"]
+    assert top[0]["id"] == 1777
+    assert [r["row"] for r in top] == [r["id"] for r in top]
+    load = t["load"].to_numpy().copy()
+    load[1500] = np.nan  # even: filtered out, not a failure
+    load[1501] = np.nan
+    pq.write_table(t.set_column(t.schema.get_field_index("load"), "load", pa.array(load)), tmp_path / "m.parquet",
+                   row_group_size=700)
+    with pytest.raises(DataSourceError, match=r"rows 1400-1899 \(row 101 of the batch\)"):  # 1501 = 1400 + 101
+        tallfit.fit(tmp_path / "m.parquet", target="power", features=["load", "temp"], where="odd = 1",
+                    missing={"load": "fail"}, batch_rows=500)

@@ -85,7 +85,8 @@ class Design:
         else:
             block, filtered = self._general(batch, label)
         if extra_columns:
-            mask = None if block.keep is None else pa.array(block.keep)
+            inner = block.keep if filtered is batch else block.filtered_keep  # over the filtered rows
+            mask = None if inner is None else pa.array(inner)
             for col in extra_columns:
                 arr = filtered.column(col)
                 block.extra[col] = arr if mask is None else arr.filter(mask)
@@ -119,10 +120,16 @@ class Design:
     def _general(self, batch: pa.RecordBatch, label: str):
         spec = self.spec
         n_read = batch.num_rows
+        placed = None  # the filter's kept rows' positions in the batch as read
         if self.frame is not None:
-            batch = self.frame.apply(batch, label)
+            batch, placed = self.frame.apply(batch, label)
             self.filtered_rows += n_read - batch.num_rows
+            if placed is not None and placed.size == n_read:
+                placed = None
         m = batch.num_rows
+
+        def row_of(i: int) -> int:  # a row of the filtered batch, by its place in the batch read
+            return int(placed[i]) if placed is not None else i
         keep = np.ones(m, dtype=bool)
         dropped: dict[str, int] = {}
         filled: dict[str, int] = {}
@@ -133,7 +140,7 @@ class Design:
             policy = spec.policy_for(col)
             count = int(bad.sum())
             if policy.action == "fail" or (col == spec.weights):
-                first = int(np.flatnonzero(bad)[0])
+                first = row_of(int(np.flatnonzero(bad)[0]))
                 raise DataSourceError(
                     f"column {col!r} has a missing or non-finite value in {label} (row {first} of "
                     "the batch); fill or drop such rows, or choose another missing-value policy"
@@ -183,7 +190,7 @@ class Design:
                 first = int(np.flatnonzero(bad)[0])
                 raise DataSourceError(
                     f"weight column {spec.weights!r} has a negative, missing or non-finite value in "
-                    f"{label} (row {first} of the batch: {w[first]!r}); weights must be finite and >= 0"
+                    f"{label} (row {row_of(first)} of the batch: {w[first]!r}); weights must be finite and >= 0"
                 )
             zero = w == 0
             if zero.any():
@@ -212,7 +219,14 @@ class Design:
             A[:, j:j + b.shape[1]] = b
             j += b.shape[1]
         A[:, j] = y if rows is None else y[rows]
-        block = DesignBlock(A=A, n_read=n_read, dropped_by_column=dropped, keep=None if rows is None else keep)
+        # keep: the used rows among the rows read (the filter's rows out too), so a row is named by
+        # its place in the file; the extra columns come from the filtered batch (block())
+        used = None if rows is None else keep
+        if placed is not None:
+            used = np.zeros(n_read, dtype=bool)
+            used[placed if rows is None else placed[rows]] = True
+        block = DesignBlock(A=A, n_read=n_read, dropped_by_column=dropped, keep=used)
+        block.filtered_keep = None if rows is None else keep
         block.names = list(self.names)
         block.filled = filled
         if A.shape[0] and not self.predicting:  # the column ranges serve the fit and its passes

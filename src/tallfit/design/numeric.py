@@ -18,7 +18,8 @@ class DesignBlock:
     A: np.ndarray  # (m_used, p + 1), Fortran order; last column is the target
     n_read: int
     dropped_by_column: dict[str, int] = field(default_factory=dict)
-    keep: np.ndarray | None = None  # boolean mask of used rows, None when every row is used
+    keep: np.ndarray | None = None  # mask of used rows among the rows read, None when every row is used
+    filtered_keep: np.ndarray | None = None  # the same over the rows a --where filter kept (the SQL step's)
     extra: dict[str, pa.Array] = field(default_factory=dict)  # extra columns, used rows only
     file_index: int = -1
     row_start: int = 0

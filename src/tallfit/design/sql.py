@@ -11,6 +11,7 @@ import re
 from dataclasses import dataclass
 from itertools import combinations
 
+import numpy as np
 import pyarrow as pa
 
 from tallfit.errors import ColumnNotFoundError, DesignError
@@ -66,21 +67,26 @@ class CompiledFrame:
                     raise ColumnNotFoundError(col, available, where=f"--derive {name} = {text!r} ({where_label})")
             available.append(name)
 
-    def apply(self, batch: pa.RecordBatch, label: str) -> pa.RecordBatch:
+    def apply(self, batch: pa.RecordBatch, label: str) -> tuple[pa.RecordBatch, np.ndarray | None]:
+        """The batch filtered and with the derived columns, and the positions in ``batch`` of the
+        rows the filter kept (None without a filter), so rows can still be named by place."""
         import polars as pl
 
         df = pl.from_arrow(batch)
+        rows = None
         try:
             if self.where is not None:
-                df = df.filter(self.where)
+                mask = df.select(self.where.fill_null(False)).to_series()
+                rows = np.flatnonzero(mask.to_numpy())
+                df = df.filter(mask)
             for name, expr in self.derive:
                 df = df.with_columns(expr.alias(name))
         except Exception as exc:
             raise DesignError(f"evaluating the SQL expressions on {label} failed: {_first_line(exc)}") from None
         table = df.to_arrow()
         if table.num_rows == 0:
-            return pa.RecordBatch.from_pylist([], schema=table.schema)
-        return table.combine_chunks().to_batches()[0]
+            return pa.RecordBatch.from_pylist([], schema=table.schema), rows
+        return table.combine_chunks().to_batches()[0], rows
 
 
 def _roots(expr) -> list[str]:
