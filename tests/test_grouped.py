@@ -165,3 +165,38 @@ def test_group_robust_errors_with_frequency_weights_equal_repeated_rows():
             ref = (ols.fit(cov_type="HC3") if kind == "HC3" else
                    ols.fit(cov_type="cluster", cov_kwds={"groups": np.repeat(d.firm.factorize()[0][sel], reps)}))
             np.testing.assert_allclose(g.groups[key].robust["estimators"][kind]["std_error"], ref.bse, rtol=1e-9)
+
+
+def test_checking_one_group_equals_statsmodels_on_its_rows(tmp_path):
+    """diagnose(group=...) reads only that group's rows: its HC3 errors and Breusch–Pagan test equal
+    statsmodels OLS / het_breuschpagan on that era's rows of grunfeld; two grouping columns (one of
+    them integer) name a group as the summary does."""
+    from statsmodels.stats.diagnostic import het_breuschpagan
+
+    from tallfit.api import diagnose
+
+    d, table = _grunfeld_eras()
+    path = tmp_path / "g.parquet"
+    pq.write_table(table, path, row_group_size=50)
+    g = tallfit.fit(path, "invest", ["value", "capital"], by="era", batch_rows=37)
+    out = diagnose(g, path, group="late", keep=["year"])
+    rows = d[d.era == "late"]
+    X = sm.add_constant(rows[["value", "capital"]].to_numpy(float))
+    ref = sm.OLS(rows.invest.to_numpy(float), X).fit()
+    np.testing.assert_allclose(out["model"].robust["estimators"]["HC3"]["std_error"],
+                               ref.get_robustcov_results(cov_type="HC3").bse, rtol=1e-9)
+    lm, lm_p, _, _ = het_breuschpagan(ref.resid, X)
+    bp = out["diagnostics"]["breusch_pagan"]
+    np.testing.assert_allclose([bp["statistic"], bp["p_value"]], [lm, lm_p], rtol=1e-8)
+    assert out["diagnostics"]["n_used"] == len(rows)
+    top = out["diagnostics"]["top_residuals"][0]
+    assert top["year"] >= 1945 and d.year.iloc[top["row"]] == top["year"]  # named by its row in the file
+    g2 = tallfit.fit(path, "invest", ["value"], by=["era", "year"], batch_rows=37)
+    two = diagnose(g2, path, group="early | 1935", robust="HC1")
+    assert two["diagnostics"]["n_used"] == int((d.year == 1935).sum()) == two["model"].inference.n_used
+    with pytest.raises(DesignError, match="name the group to check with --group"):
+        diagnose(g, path)
+    with pytest.raises(DesignError, match="no model for group 'middle'"):
+        diagnose(g, path, group="middle")
+    with pytest.raises(DesignError, match="not one per group"):
+        diagnose(g.groups["late"], path, group="late")

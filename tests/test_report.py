@@ -159,3 +159,27 @@ def test_report_of_an_absorbed_model_from_its_file(fleet, capsys):
             im.verify()
     html = out.read_text(encoding="utf-8")
     assert "cluster:host_id" in html and "host_id is absorbed: 60 levels" in html and "R² within levels" in html
+
+
+def test_report_of_one_group_of_a_per_group_model(fleet, tmp_path, capsys):
+    """fit --by (hosts split in two halves by an invented column), then report --group: the report
+    checks that group's rows only, says which rows it kept, and still finds the bend in
+    inlet_temp_c; without --group, or with a group the file lacks, exit 2 and nothing written."""
+    folder, data, _ = fleet
+    t = pq.read_table(data)
+    half = np.where(np.arange(t.num_rows) % 2 == 0, "even", "odd")
+    path = tmp_path / "halves.parquet"
+    pq.write_table(t.append_column("half", pa.array(half)), path)
+    model = tmp_path / "g.json"
+    assert main(["fit", str(path), "--target", "power_w", "--features", "cpu_util,inlet_temp_c", "--by", "half",
+                 "--out", str(model), "--no-progress"]) == 0
+    out = tmp_path / "odd.html"
+    assert main(["report", str(model), str(path), "--out", str(out), "--no-progress"]) == 2
+    assert "--group" in capsys.readouterr().err and not out.exists()
+    assert main(["report", str(model), str(path), "--out", str(out), "--group", "none", "--no-progress"]) == 2
+    assert "no model for group 'none'" in capsys.readouterr().err and not out.exists()
+    assert main(["report", str(model), str(path), "--out", str(out), "--group", "odd", "--no-progress"]) == 0
+    assert "inlet_temp_c: the straight line misses a bend" in capsys.readouterr().out
+    html = out.read_text(encoding="utf-8")
+    assert "Rows kept: <code>&quot;half&quot; = &#x27;odd&#x27;</code>" in html
+    assert "3,000 rows used" in html

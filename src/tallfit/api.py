@@ -223,22 +223,37 @@ def diagnose(
     format: str | None = None,
     delimiter: str = ",",
     progress: ProgressHook | None = None,
+    group: str | None = None,
 ) -> dict[str, Any]:
     """One more pass with a fitted model: robust errors and residual diagnostics.
 
     Returns ``{"model": FitResult (with .robust set when ``data`` is the fitting data),
     "diagnostics": dict}``; ``tallfit.render.report.write_report`` turns it into a report.
+    For per-group models (``by``), ``group`` names the group to check (its key as the summary
+    shows it, e.g. ``"north-1"``, or ``"north-1 | compute-a"`` for two grouping columns); the pass
+    then reads only that group's rows.
     """
     from tallfit.diagnostics.assemble import build_diagnostics, same_data
     from tallfit.engine.second_pass import second_pass
     from tallfit.solve.robust import check_kind, robust_for_model
 
     check_kind(robust)
+    from tallfit.errors import DesignError
     from tallfit.grouped import GroupedFit
 
     if not isinstance(model, (FitResult, GroupedFit)):
         model = load_model(model)
     source = as_source(data, format=format, delimiter=delimiter)
+    if isinstance(model, GroupedFit):
+        if group is None:
+            shown = ", ".join(repr(k) for k in list(model.groups)[:5]) + (", …" if len(model.groups) > 5 else "")
+            raise DesignError(
+                f"this model has one model per {', '.join(model.by)} ({len(model.groups)} groups): "
+                f"name the group to check with --group (group=), one of {shown}"
+            )
+        model = model.group(group, source.schema)
+    elif group is not None:
+        raise DesignError(f"--group {group!r}: this model is one model, not one per group")
     sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep), robust=robust,
                      batch_rows=batch_rows, progress=progress)
     if same_data(model, sp):

@@ -47,6 +47,27 @@ def group_rows(columns: list[pa.Array]):
             yield key, idx
 
 
+def group_filter(by: list[str], key: str, schema: pa.Schema) -> str:
+    """An SQL condition that selects the rows of group ``key`` (spelt as group_keys spells it)."""
+    parts = key.split(KEY_SEP) if len(by) > 1 else [key]
+    if len(parts) != len(by):
+        raise DesignError(f"group {key!r} does not split into one value per grouping column ({', '.join(by)})")
+    conds = []
+    for col, part in zip(by, parts):
+        t = schema.field(col).type if col in schema.names else pa.string()
+        t = t.value_type if pa.types.is_dictionary(t) else t
+        name = '"' + col.replace('"', '""') + '"'
+        if pa.types.is_string(t) or pa.types.is_large_string(t):
+            conds.append(f"{name} = '" + part.replace("'", "''") + "'")
+        elif pa.types.is_boolean(t) and part in ("true", "false"):
+            conds.append(f"{name} = {part}")
+        elif part.lstrip("-").isdigit():  # an integer, or a whole number in a float column
+            conds.append(f"{name} = {int(part)}")
+        else:
+            raise DesignError(f"group {key!r}: {part!r} is not a value of column {col!r} ({t})")
+    return " AND ".join(conds)
+
+
 @dataclass
 class GroupedFit:
     """Models per group, the groups that could not be fitted, and how the groups were formed."""
@@ -79,6 +100,20 @@ class GroupedFit:
             "dropped_rows": {"total": self.n_read - self.n_used, "by_column": dict(self.dropped_by_column)},
             "source": self.source,
         }
+
+    def group(self, key: str, schema: pa.Schema) -> FitResult:
+        """Group ``key``'s model, its row filter narrowed to that group's rows (for a second pass
+        over data that holds every group: robust errors and residual checks of that group)."""
+        from dataclasses import replace
+
+        if key not in self.groups:
+            why = f" ({self.failed[key]})" if key in self.failed else ""
+            shown = ", ".join(repr(k) for k in list(self.groups)[:8]) + (", …" if len(self.groups) > 8 else "")
+            raise DesignError(f"no model for group {key!r}{why}; the groups with a model are {shown}")
+        model = self.groups[key]
+        cond = group_filter(self.by, key, schema)
+        where = f"({model.spec.where}) AND {cond}" if model.spec.where else cond
+        return replace(model, spec=replace(model.spec, where=where))
 
     def summary(self) -> str:
         from tallfit.render.groups import render_groups

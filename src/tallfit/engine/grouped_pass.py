@@ -4,7 +4,8 @@ Each batch is split by group key (one stable sort, grouped.group_rows); each gro
 through that group's own design (its categorical coding) into that group's second-pass sums
 (engine/pass_sums.py), so every group gets exactly the sandwich a pass over its rows alone would
 give. Rows of groups without a model (too few rows, aliased) and of a missing key are skipped.
-Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics stay one model at a time.
+Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics check one group at a time
+(GroupedFit.group: that group's model with its rows as the filter).
 """
 
 from __future__ import annotations

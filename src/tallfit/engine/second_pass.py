@@ -212,8 +212,8 @@ def second_pass(
 
     if not isinstance(model, FitResult):
         raise DesignError(
-            "the second pass checks one model at a time; per-group models are not supported yet "
-            "(fit the group of interest with --where instead of --by)"
+            "the second pass checks one model at a time: name one group of the per-group models "
+            "(--group, or GroupedFit.group(key, schema))"
         )
     absorbed = (model.coding or {}).get("absorbed") if model.spec.absorb else None
     if model.spec.absorb and (not absorbed or "means" not in absorbed):

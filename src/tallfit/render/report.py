@@ -106,6 +106,8 @@ def _data_section(model: FitResult, diag: dict[str, Any], data_description: str)
             ["checked here", _e(data_description), count(diag["n_read"]), count(diag["n_used"]),
              count(diag["n_read"] - diag["n_used"])]]
     out = _table(["", "data", "rows read", "used", "not used"], rows)
+    if model.spec.where:  # a --where filter, or the group a per-group model's check reads
+        out += f"<p>Rows kept: <code>{_e(model.spec.where)}</code></p>"
     reasons = sorted(acc.dropped_by_column.items())
     if reasons:
         out += "<p>Rows not used, by reason (a row missing in two columns counts in both): " + ", ".join(
