@@ -64,6 +64,7 @@ def fit(
     cluster: str | Sequence[str] | None = None,
     workers: int | None = None,
     method: str = "qr",
+    scheduler: Any = None,
 ) -> FitResult:
     """Fit ``target ~ features`` by exact least squares, streaming the data once.
 
@@ -130,7 +131,14 @@ def fit(
         which loses about twice as many digits to ill-conditioning and warns when few are left;
         ``"auto"``: the Gram path, replaced by a stable pass when its estimate says it is unsafe
         (see ``tallfit.engine.passes``).
+    scheduler
+        Run the passes over parts on a dask.distributed cluster: a ``Client``, a scheduler address
+        (``"tcp://host:8786"``) or ``"local"`` (one worker process per core here). Each worker
+        reads its parts (files, runs of Parquet row groups) itself, so they must reach the files;
+        the answer is the local one, bit for bit (see ``tallfit.engine.cluster``).
     """
+    if scheduler is not None:
+        return _on_cluster(fit, dict(locals()))
     spec = make_spec(
         target, features, intercept=intercept, categorical=categorical, derive=derive,
         interactions=interactions, polynomials=polynomials, where=where, weights=weights,
@@ -211,6 +219,24 @@ def fit(
     return with_robust(result, source, robust, cluster, batch_rows, progress)
 
 
+def _on_cluster(fn, kwargs: dict):
+    """``fn(**kwargs)`` with its passes over parts on the cluster ``kwargs["scheduler"]``; a
+    result says where it ran (and why not, when nothing could be sent: data not in files, or one part)."""
+    from tallfit.engine.cluster import on_cluster
+
+    with on_cluster(kwargs.pop("scheduler")) as run:
+        out = fn(**kwargs, scheduler=None)
+    where = out["model"] if isinstance(out, dict) else out
+    models = list(where.groups.values()) if hasattr(where, "groups") else [where]
+    for m in models:
+        m.options["cluster"] = {"scheduler": run.address, "passes": run.passes, "parts": run.parts}
+        if run.parts == 0:
+            m.warnings.append(
+                f"nothing ran on the cluster at {run.address}: the data is one part or not in files, "
+                "so it was read here (give the workers files or URIs they can reach)")
+    return out
+
+
 def diagnose(
     model: FitResult | str | os.PathLike,
     data: Any,
@@ -224,6 +250,7 @@ def diagnose(
     delimiter: str = ",",
     progress: ProgressHook | None = None,
     group: str | None = None,
+    scheduler: Any = None,
 ) -> dict[str, Any]:
     """One more pass with a fitted model: robust errors and residual diagnostics.
 
@@ -231,8 +258,10 @@ def diagnose(
     "diagnostics": dict}``; ``tallfit.render.report.write_report`` turns it into a report.
     For per-group models (``by``), ``group`` names the group to check (its key as the summary
     shows it, e.g. ``"north-1"``, or ``"north-1 | compute-a"`` for two grouping columns); the pass
-    then reads only that group's rows.
+    then reads only that group's rows. ``scheduler``: run the pass on a dask cluster (see ``fit``).
     """
+    if scheduler is not None:
+        return _on_cluster(diagnose, dict(locals()))
     from tallfit.diagnostics.assemble import build_diagnostics, same_data
     from tallfit.engine.second_pass import second_pass
     from tallfit.solve.robust import check_kind, robust_for_model

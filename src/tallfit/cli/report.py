@@ -23,6 +23,7 @@ def register(sub) -> None:
     p.add_argument("--keep", type=split_list, default=[], metavar="COLS", help="id columns to list with the largest residuals and leverages")
     p.add_argument("--bins", type=int, default=20, metavar="N", help="bins per feature in the residual checks (default 20)")
     p.add_argument("--no-images", action="store_true", help="write only the HTML file (images still embedded)")
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS", help="run the pass on a dask.distributed cluster (tcp://host:8786, or 'local')")
     p.add_argument("--group", metavar="KEY", help="for per-group models (fit --by): the group to check, as the "
                    "model's summary names it (e.g. north-1); the pass reads that group's rows only")
 
@@ -41,7 +42,8 @@ def run(args) -> int:
     source = open_data(args)
     with progress_for(args, source, "checking") as prog:
         found = diagnose(model, source, robust=args.robust, cluster=args.cluster, keep=args.keep,
-                         bins=args.bins, batch_rows=args.batch_rows, progress=prog, group=args.group)
+                         bins=args.bins, batch_rows=args.batch_rows, progress=prog, group=args.group,
+                         scheduler=args.scheduler)
     written = write_report(found["model"], found["diagnostics"], args.out, images=not args.no_images,
                            data_description=found["source"])
     print(f"report written to {args.out}" + (f" (images in {written['images_dir']})" if written.get("images_dir") else ""))

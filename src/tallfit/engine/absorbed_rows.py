@@ -55,6 +55,15 @@ class AbsorbedRows:
         self.table[2:, :p] = -(means @ R11_inv)
         self.table[2:, p] = -alpha
 
+    def __getstate__(self) -> dict:  # sent to cluster workers with the pass's plan
+        state = dict(self.__dict__)
+        del state["_lock"]
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._lock = threading.Lock()
+
     def coder(self, key_type: pa.DataType):
         """A fresh level coder whose ids below len(levels) are the model's levels (one per stream
         or per scorer: coders are not shared between threads)."""

@@ -79,6 +79,12 @@ def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int 
     """Every part on its own (W threads), merged in part order as each finishes its turn."""
     from tallfit.engine.parallel import OrderedMerge, offset_progress, read_part, run_tasks, worker_count
 
+    from tallfit.engine.cluster import current
+
+    cluster = current()
+    if cluster is not None:  # each part on a cluster worker, merged there part after part
+        return cluster.map_merge(levels_part, [sub for sub, _ in parts], _merge, "chain", spec=spec,
+                                 batch_rows=batch_rows)
     w = worker_count(workers)
     lock = threading.Lock()
     fold = OrderedMerge(_merge)
@@ -94,6 +100,13 @@ def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int 
     with shared_labels():  # parts starting from the same label dictionary hash it once
         run_tasks([task(i, sub, f) for i, (sub, f) in enumerate(parts)], w)
     return fold.result()
+
+
+def levels_part(sub, spec: ModelSpec, batch_rows: int):
+    """One part's level statistics, read by a worker of its own (a cluster worker)."""
+    from tallfit.engine.parallel import read_part
+
+    return _stream_pass(sub, spec, batch_rows, None, Design(spec, structured=True), prefetch=read_part(sub, 1))
 
 
 def _merge(a, b):

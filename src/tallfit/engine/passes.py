@@ -22,6 +22,7 @@ import numpy as np
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec
+from tallfit.engine.cluster import current
 from tallfit.engine.gram_accumulator import GramAccumulator
 from tallfit.engine.parallel import (BufferPool, fold_round_robin, offset_progress, part_workers, read_part, run_tasks,
                                      source_parts, tree_merge, worker_count)
@@ -81,6 +82,10 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
         pool.give(block.A)
 
     parts = source_parts(source) if (design.plain and not spec.absorb) else None
+    cluster = current()
+    if parts is not None and cluster is not None:  # each part read and folded by a cluster worker
+        return cluster.map_merge(fold_part, [sub for sub, _ in parts], lambda a, b: a.merge(b), "tree",
+                                 spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows)
     if parts is not None:
         import threading
 
@@ -90,12 +95,8 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
 
         def task(sub, file_index: int):
             def run():
-                acc = make()
-                hook = offset_progress(progress, file_index, lock)
-                for block in design_blocks(sub, spec, rows, hook, design=Design(spec), pool=pool,
-                                           prefetch=read_part(sub, w)):
-                    fold_and_return(acc, block)
-                return acc
+                return fold_part(sub, spec, rows, make, fold, pad_rows, readers=w, pool=pool,
+                                 progress=offset_progress(progress, file_index, lock))
             return run
 
         accs = run_tasks([task(sub, i) for sub, i in parts], w)
@@ -105,6 +106,21 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
         blocks = design_blocks(source, spec, rows, progress, design=design, pool=pool)
         accs = fold_round_robin(blocks, w, make, fold_and_return)
     return tree_merge(accs, lambda a, b: a.merge(b))
+
+
+def fold_part(sub, spec: ModelSpec, rows: int, make, fold, pad_rows: int = 0, readers: int = 1,
+              pool: BufferPool | None = None, progress=None):
+    """One part's accumulator: ``make()`` folded with every block of the part (``readers``: the
+    workers reading parts at once, 1 on a cluster worker; see engine.parallel.read_part)."""
+    from tallfit.engine.local import design_blocks
+
+    pool = pool or BufferPool(pad_rows)
+    acc = make()
+    for block in design_blocks(sub, spec, rows, progress, design=Design(spec), pool=pool,
+                               prefetch=read_part(sub, readers)):
+        fold(acc, block)
+        pool.give(block.A)
+    return acc
 
 
 def factor_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design | None = None, *,

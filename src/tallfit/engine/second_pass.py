@@ -22,6 +22,7 @@ import threading
 from collections.abc import Callable, Sequence
 
 from tallfit.design.categorical import shared_labels
+from tallfit.engine.cluster import current
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
 from tallfit.engine.parallel import (BufferPool, OrderedMerge, offset_progress, read_part, run_tasks, source_parts,
                                      worker_count)
@@ -153,10 +154,8 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
 
     def stream(i: int):
         sub, file_index = parts[i]
-        blocks = design_blocks(sub, spec, batch_rows, offset_progress(progress, file_index, lock),
-                               extra_columns=extra, coding=coding, pool=pool, prefetch=read_part(sub, w),
-                               level_codes=plan.level_codes)
-        return iter(plan.absorbed.coded(blocks, sub) if plan.absorbed is not None else blocks)
+        return _part_blocks(plan, sub, spec, coding, extra, batch_rows, offset_progress(progress, file_index, lock),
+                            pool=pool, prefetch=read_part(sub, w))
 
     merged = OrderedMerge(lambda a, b: a.absorb(b))
     sample = _Sample(plan, len(parts))
@@ -189,6 +188,49 @@ def _scan_parts(plan: PassPlan, parts: list, spec, coding, extra: list[str], bat
     with shared_labels():  # cluster keys of parts with one label dictionary: hashed once
         run_tasks([task(i) for i in range(len(parts))], w)
     return merged.result()
+
+
+def _part_blocks(plan: PassPlan, sub, spec, coding, extra: list[str], batch_rows: int, progress=None,
+                 pool: BufferPool | None = None, prefetch: int = 0):
+    """A part's design blocks for the pass (with each row's absorbed level, if any)."""
+    blocks = design_blocks(sub, spec, batch_rows, progress, extra_columns=extra, coding=coding, pool=pool,
+                           prefetch=prefetch, level_codes=plan.level_codes)
+    return iter(plan.absorbed.coded(blocks, sub) if plan.absorbed is not None else blocks)
+
+
+def part_sums(sub, plan: PassPlan, spec, coding, extra: list[str], batch_rows: int) -> PartSums:
+    """One part's sums, read and folded by a worker of its own (a cluster worker); returned
+    without the plan, which the caller holds."""
+    pool = BufferPool()
+    part = PartSums(plan, sub, pool)
+    with single_blas_thread():
+        for block in _part_blocks(plan, sub, spec, coding, extra, batch_rows, pool=pool,
+                                  prefetch=read_part(sub, 1)):
+            part.fold(block)
+    part.release()
+    part.plan = part.source = part.pool = None
+    return part
+
+
+def _scan_on_cluster(cluster, plan: PassPlan, parts: list, spec, coding, extra: list[str],
+                     batch_rows: int) -> PartSums:
+    """The parts' sums on the cluster's workers, merged there in part order; the bin grids are set
+    here first, from the first rows in data order (the rows a local pass would take)."""
+    if not plan.ready:
+        held, rows = [], 0
+        for sub, _ in parts:
+            for block in _part_blocks(plan, sub, spec, coding, extra, batch_rows):
+                held.append(block)
+                rows += block.n_used
+                if rows >= SAMPLE_ROWS:
+                    break
+            if rows >= SAMPLE_ROWS:
+                break
+        plan.set_grids(held, whole=rows < SAMPLE_ROWS)
+    merged = cluster.map_merge(part_sums, [sub for sub, _ in parts], lambda a, b: a.absorb(b), "chain",
+                               plan=plan, spec=spec, coding=coding, extra=extra, batch_rows=batch_rows)
+    merged.plan = plan
+    return merged
 
 
 def second_pass(
@@ -228,6 +270,9 @@ def second_pass(
     plan = PassPlan(model, cluster, keep, diagnostics, top_k, robust)
     extra = list(dict.fromkeys(list(cluster) + list(keep) + ([model.spec.absorb] if absorbed else [])))
     parts = source_parts(source)
+    cluster = current()
+    if parts is not None and cluster is not None:
+        return _scan_on_cluster(cluster, plan, parts, model.spec, model.coding, extra, batch_rows).finish()
     if parts is not None:
         return _scan_parts(plan, parts, model.spec, model.coding, extra, batch_rows, progress, workers).finish()
     blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding,

@@ -124,6 +124,10 @@ def render_text(result: FitResult) -> str:
     out = [head + result.solver.rjust(78 - len(head)), RULE]
     if result.source.get("description"):
         out.append(f"data      {result.source['description']}")
+    ran = result.options.get("cluster")
+    if ran and ran.get("parts"):
+        out.append(f"          read on the dask cluster {ran['scheduler']}: {count(ran['parts'])} parts "
+                   f"in {ran['passes']} pass{'es' if ran['passes'] != 1 else ''}")
     dropped = ""
     if acc.n_dropped:
         parts = ", ".join(f"{k.strip('()')} {count(v)}" for k, v in sorted(acc.dropped_by_column.items()))

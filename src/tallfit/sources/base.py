@@ -111,6 +111,13 @@ class SharedFooter:
             if self._left <= 0:
                 self.meta = None
 
+    def __getstate__(self) -> dict:  # a part sent to another process parses the footer there
+        return {"meta": None, "_left": 0}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._lock = threading.Lock()
+
 
 def _row_group_spans(rows: list[int], span_rows: int) -> list[tuple[int, int, int]]:
     """(first, stop, first row) runs of consecutive row groups of at least span_rows rows each

@@ -1,0 +1,124 @@
+"""Passes on a dask.distributed cluster (a LocalCluster of worker processes here): every part is
+read and folded by a worker, the accumulators merged there in the local pass's order, so the
+answer equals the local one bit for bit (the property checked here; the local passes are checked
+against statsmodels and NIST elsewhere). Skipped when dask.distributed is not installed."""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import tallfit
+from tallfit.engine.second_pass import second_pass
+from tallfit.errors import DataSourceError, DesignError
+
+distributed = pytest.importorskip("distributed", reason="dask.distributed is not installed (tallfit[cluster])")
+
+
+@pytest.fixture(scope="module")
+def client():
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address=None, silence_logs=50)
+    c = distributed.Client(cluster)
+    yield c
+    c.close()
+    cluster.close()
+
+
+@pytest.fixture(scope="module")
+def fleet(tmp_path_factory):
+    """Invented telemetry in two files of several row groups (parts of ≥ 2^18 rows each)."""
+    rng = np.random.default_rng(3)
+    folder = tmp_path_factory.mktemp("fleet")
+    for f in range(2):
+        n = 600_000
+        cpu = rng.uniform(0, 1, n)
+        temp = rng.normal(24, 3, n)
+        host = rng.integers(0, 300, n)
+        zone = rng.choice(["z1", "z2", "z3"], n)
+        power = 110 + 170 * cpu + 2.5 * temp + 4 * (zone == "z2") + rng.normal(0, 3, 300)[host] + rng.normal(0, 4, n)
+        t = pa.table({"cpu_util": cpu, "inlet_temp_c": temp, "host_id": [f"h{h:03d}" for h in host],
+                      "zone": zone, "power_w": power})
+        pq.write_table(t, folder / f"part-{f}.parquet", row_group_size=100_000)
+    return str(folder / "*.parquet")
+
+
+FEATS = ["cpu_util", "inlet_temp_c"]
+
+
+@pytest.mark.parametrize("opts", [{}, {"method": "gram"}, {"categorical": ["zone"]},
+                                  {"absorb": "host_id", "categorical": ["zone"]}])
+def test_fit_on_the_cluster_equals_the_local_fit(fleet, client, opts):
+    here = tallfit.fit(fleet, "power_w", FEATS, **opts)
+    there = tallfit.fit(fleet, "power_w", FEATS, scheduler=client, **opts)
+    assert there.options["cluster"]["parts"] >= 2
+    np.testing.assert_array_equal(there.inference.estimate, here.inference.estimate)
+    np.testing.assert_array_equal(there.inference.std_error, here.inference.std_error)
+    assert there.inference.n_used == here.inference.n_used == 1_200_000
+    assert not any("nothing ran on the cluster" in w for w in there.warnings)
+    assert "read on the dask cluster" in there.summary()
+
+
+def test_second_pass_on_the_cluster_equals_the_local_pass(fleet, client):
+    from tallfit.engine.cluster import on_cluster
+
+    model = tallfit.fit(fleet, "power_w", FEATS)
+    here = second_pass(model, fleet, cluster=["host_id"], keep=["host_id"], robust="all")
+    with on_cluster(client) as run:
+        there = second_pass(model, fleet, cluster=["host_id"], keep=["host_id"], robust="all")
+    assert run.parts >= 2
+    np.testing.assert_array_equal(there.sandwich.gram, here.sandwich.gram)
+    np.testing.assert_array_equal(there.clusters[0].S[: there.clusters[0].groups],
+                                  here.clusters[0].S[: here.clusters[0].groups])
+    np.testing.assert_array_equal(there.feature_bins.sums, here.feature_bins.sums)
+    np.testing.assert_array_equal(there.heat, here.heat)
+    assert there.top_residuals.to_list() == here.top_residuals.to_list()
+    fitted = tallfit.fit(fleet, "power_w", FEATS, absorb="host_id", robust="HC1", scheduler=client)
+    np.testing.assert_array_equal(fitted.robust["estimators"]["HC1"]["std_error"],
+                                  tallfit.fit(fleet, "power_w", FEATS, absorb="host_id",
+                                              robust="HC1").robust["estimators"]["HC1"]["std_error"])
+
+
+def test_cluster_reports_what_it_could_not_send_and_bad_addresses(fleet, client, tmp_path, monkeypatch):
+    import tallfit.engine.cluster as cl
+
+    monkeypatch.setattr(cl, "CONNECT_SECONDS", 2)
+    table = pq.read_table(fleet.replace("*", "part-0"))
+    m = tallfit.fit(table.slice(0, 1000), "power_w", FEATS, scheduler=client)
+    assert any("nothing ran on the cluster" in w for w in m.warnings)
+    with pytest.raises(DataSourceError, match="cannot reach the dask scheduler"):
+        tallfit.fit(fleet, "power_w", FEATS, scheduler="tcp://127.0.0.1:1")
+    with pytest.raises(DesignError, match="scheduler must be"):
+        tallfit.fit(fleet, "power_w", FEATS, scheduler=42)
+    bad = tmp_path / "bad"
+    bad.mkdir()
+    t = table.slice(0, 300_000)
+    pq.write_table(t, bad / "a.parquet", row_group_size=100_000)
+    pq.write_table(t.set_column(0, "cpu_util", pa.array(["x"] * t.num_rows)), bad / "b.parquet")
+    with pytest.raises(tallfit.errors.TallfitError, match="b.parquet"):  # a worker's error, as it would be here
+        tallfit.fit(str(bad / "*.parquet"), "power_w", FEATS, scheduler=client)
+
+
+def test_cli_fit_and_report_on_the_cluster(fleet, client, tmp_path, capsys, monkeypatch):
+    """fit --scheduler ADDRESS (the test cluster's own scheduler) writes the local model; report
+    --scheduler too; an unreachable scheduler is exit 2 with nothing written."""
+    import tallfit.engine.cluster as cl
+    from tallfit.cli import main
+
+    address = client.scheduler.address
+    out = tmp_path / "m.json"
+    assert main(["fit", fleet, "--target", "power_w", "--features", "cpu_util,inlet_temp_c", "--scheduler", address,
+                 "--out", str(out), "--no-progress"]) == 0
+    assert "read on the dask cluster" in capsys.readouterr().out
+    here = tallfit.fit(fleet, "power_w", FEATS)
+    np.testing.assert_array_equal(tallfit.load(out).inference.estimate, here.inference.estimate)
+    assert main(["report", str(out), fleet, "--out", str(tmp_path / "r.html"), "--scheduler", address,
+                 "--no-progress", "--no-images"]) == 0
+    assert (tmp_path / "r.html").exists()
+    monkeypatch.setattr(cl, "CONNECT_SECONDS", 1)
+    bad = tmp_path / "never.json"
+    assert main(["fit", fleet, "--target", "power_w", "--features", "cpu_util", "--scheduler", "tcp://127.0.0.1:1",
+                 "--out", str(bad), "--no-progress"]) == 2
+    assert "cannot reach the dask scheduler" in capsys.readouterr().err and not bad.exists()
