@@ -103,10 +103,12 @@ def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int 
 
 
 def levels_part(sub, spec: ModelSpec, batch_rows: int):
-    """One part's level statistics, read by a worker of its own (a cluster worker)."""
+    """One part's level statistics, read by a cluster worker."""
+    from tallfit.engine.cluster import PART_READERS
     from tallfit.engine.parallel import read_part
 
-    return _stream_pass(sub, spec, batch_rows, None, Design(spec, structured=True), prefetch=read_part(sub, 1))
+    return _stream_pass(sub, spec, batch_rows, None, Design(spec, structured=True),
+                        prefetch=read_part(sub, PART_READERS))
 
 
 def _merge(a, b):

@@ -22,7 +22,7 @@ import numpy as np
 from tallfit.accumulate.factor import FactorAccumulator
 from tallfit.design.design import Design
 from tallfit.design.spec import ModelSpec
-from tallfit.engine.cluster import current
+from tallfit.engine.cluster import PART_READERS, current
 from tallfit.engine.gram_accumulator import GramAccumulator
 from tallfit.engine.parallel import (BufferPool, fold_round_robin, offset_progress, part_workers, read_part, run_tasks,
                                      source_parts, tree_merge, worker_count)
@@ -85,7 +85,8 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
     cluster = current()
     if parts is not None and cluster is not None:  # each part read and folded by a cluster worker
         return cluster.map_merge(fold_part, [sub for sub, _ in parts], lambda a, b: a.merge(b), "tree",
-                                 spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows)
+                                 spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows,
+                                 readers=PART_READERS)
     if parts is not None:
         import threading
 

@@ -22,7 +22,7 @@ import threading
 from collections.abc import Callable, Sequence
 
 from tallfit.design.categorical import shared_labels
-from tallfit.engine.cluster import current
+from tallfit.engine.cluster import PART_READERS, current
 from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, design_blocks
 from tallfit.engine.parallel import (BufferPool, OrderedMerge, offset_progress, read_part, run_tasks, source_parts,
                                      worker_count)
@@ -199,13 +199,13 @@ def _part_blocks(plan: PassPlan, sub, spec, coding, extra: list[str], batch_rows
 
 
 def part_sums(sub, plan: PassPlan, spec, coding, extra: list[str], batch_rows: int) -> PartSums:
-    """One part's sums, read and folded by a worker of its own (a cluster worker); returned
+    """One part's sums, read and folded by a cluster worker; returned
     without the plan, which the caller holds."""
     pool = BufferPool()
     part = PartSums(plan, sub, pool)
     with single_blas_thread():
         for block in _part_blocks(plan, sub, spec, coding, extra, batch_rows, pool=pool,
-                                  prefetch=read_part(sub, 1)):
+                                  prefetch=read_part(sub, PART_READERS)):
             part.fold(block)
     part.release()
     part.plan = part.source = part.pool = None
