@@ -122,3 +122,17 @@ def test_cli_fit_and_report_on_the_cluster(fleet, client, tmp_path, capsys, monk
     assert main(["fit", fleet, "--target", "power_w", "--features", "cpu_util", "--scheduler", "tcp://127.0.0.1:1",
                  "--out", str(bad), "--no-progress"]) == 2
     assert "cannot reach the dask scheduler" in capsys.readouterr().err and not bad.exists()
+
+
+def test_validation_on_the_cluster_equals_the_local_split(fleet, client):
+    """The fold and holdout pass: rows keep their scan positions on the workers, so every fold's
+    factor, the CV error and the holdout error are the local ones, bit for bit."""
+    from tallfit.api import validate
+
+    here = validate(fleet, "power_w", FEATS, folds=5, holdout=0.2, ridge="auto")
+    there = validate(fleet, "power_w", FEATS, folds=5, holdout=0.2, ridge="auto", scheduler=client)
+    assert there.fit.options["cluster"]["parts"] >= 2
+    a, b = here.to_dict(), there.to_dict()
+    for key in ("cv", "holdout", "ridge"):
+        assert a[key] == b[key] and a[key] is not None
+    np.testing.assert_array_equal(there.fit.inference.estimate, here.fit.inference.estimate)

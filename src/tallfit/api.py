@@ -226,7 +226,7 @@ def _on_cluster(fn, kwargs: dict):
 
     with on_cluster(kwargs.pop("scheduler")) as run:
         out = fn(**kwargs, scheduler=None)
-    where = out["model"] if isinstance(out, dict) else out
+    where = out["model"] if isinstance(out, dict) else getattr(out, "fit", out)  # a ValidationReport's fit
     models = list(where.groups.values()) if hasattr(where, "groups") else [where]
     for m in models:
         m.options["cluster"] = {"scheduler": run.address, "passes": run.passes, "parts": run.parts}
@@ -352,6 +352,7 @@ def validate(
     absorb: str | None = None,
     by: Sequence[str] = (),
     drop_levels: dict[str, Sequence[str]] | None = None,
+    scheduler: Any = None,
 ):
     """Fit on the training rows and measure prediction error on rows not fitted, in one pass.
 
@@ -362,9 +363,11 @@ def validate(
     "best") searches terms by ``criterion`` ("aic", "bic", "adj_r2", "cv"); each entry of
     ``compare`` is a list of terms given an F test against the model without them. ``mae``
     adds a second pass for the holdout's mean absolute error. The design options are those of
-    :func:`fit` (weights, absorbed keys and iterative solvers are not offered here). Returns a
-    ValidationReport.
+    :func:`fit` (weights, absorbed keys and iterative solvers are not offered here), and so is
+    ``scheduler`` (the split pass on a dask cluster). Returns a ValidationReport.
     """
+    if scheduler is not None:
+        return _on_cluster(validate, dict(locals()))
     from tallfit.accumulate.folds import FoldPlan
     from tallfit.engine.split import absolute_error_pass, accumulate_split, finalize_split
     from tallfit.errors import DesignError

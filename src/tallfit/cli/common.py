@@ -118,3 +118,10 @@ def design_kwargs(args) -> dict:
     if drops:
         out["drop_levels"] = drops
     return out
+
+
+def add_scheduler_option(p) -> None:
+    """--scheduler: the passes over parts on a dask.distributed cluster (engine/cluster.py)."""
+    p.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="run the passes on a dask.distributed cluster: its scheduler's address (tcp://host:8786), "
+                   "or 'local' for one worker process per core here; the workers read the files themselves")

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import sys
 
-from tallfit.cli.common import add_data_options, add_design_options, design_kwargs, open_data, progress_for, split_list
+from tallfit.cli.common import (add_data_options, add_design_options, add_scheduler_option, design_kwargs, open_data,
+                                progress_for, split_list)
 
 NAME = "fit"
 HELP = "fit a model on a data set and save it"
@@ -42,7 +43,7 @@ def register(sub) -> None:
     f.add_argument("--cache", action="store_true", help="with an iterative solver: keep the decoded design in a local memory-mapped file for re-passes")
     f.add_argument("--spill-dir", default=None, help="directory for that cache (default: the system temporary directory)")
     f.add_argument("--workers", type=_positive_int, default=None, metavar="N", help="threads reading and folding in parallel (default: all cores)")
-    f.add_argument("--scheduler", default=None, metavar="ADDRESS", help="run the passes on a dask.distributed cluster: its scheduler's address (tcp://host:8786), or 'local' for one worker process per core here; the workers read the files themselves")
+    add_scheduler_option(f)
     f.add_argument("--method", choices=["qr", "gram", "auto"], default="qr", help="qr: stable Householder factor (default); gram: faster co-moments, fewer digits on ill-conditioned data (warns); auto: gram, with a stable pass when it would be unsafe")
 
 

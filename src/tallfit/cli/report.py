@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from tallfit.cli.common import add_data_options, open_data, progress_for, split_list
+from tallfit.cli.common import add_data_options, add_scheduler_option, open_data, progress_for, split_list
 
 NAME = "report"
 HELP = "check a saved model on its data (robust errors, residual diagnostics) and write an HTML report"
@@ -23,7 +23,7 @@ def register(sub) -> None:
     p.add_argument("--keep", type=split_list, default=[], metavar="COLS", help="id columns to list with the largest residuals and leverages")
     p.add_argument("--bins", type=int, default=20, metavar="N", help="bins per feature in the residual checks (default 20)")
     p.add_argument("--no-images", action="store_true", help="write only the HTML file (images still embedded)")
-    p.add_argument("--scheduler", default=None, metavar="ADDRESS", help="run the pass on a dask.distributed cluster (tcp://host:8786, or 'local')")
+    add_scheduler_option(p)
     p.add_argument("--group", metavar="KEY", help="for per-group models (fit --by): the group to check, as the "
                    "model's summary names it (e.g. north-1); the pass reads that group's rows only")
 

@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import sys
 
-from tallfit.cli.common import add_data_options, add_design_options, design_kwargs, open_data, progress_for, split_list
+from tallfit.cli.common import (add_data_options, add_design_options, add_scheduler_option, design_kwargs, open_data,
+                                progress_for, split_list)
 
 NAME = "validate"
 HELP = "measure prediction error on unseen rows: holdout, k-fold CV, ridge path, term selection"
@@ -68,6 +69,7 @@ def register(sub) -> None:
     v.add_argument("--plot", metavar="PATH", help="coefficient-path plot of the ridge path (.png or .svg)")
     v.add_argument("--out", metavar="PATH", help="write the chosen model as a model file (ridge when a penalty was chosen)")
     v.add_argument("--json", action="store_true", help="print the report as JSON instead of text")
+    add_scheduler_option(v)
 
 
 def run(args) -> int:
@@ -94,7 +96,7 @@ def run(args) -> int:
             seed=args.seed, ridge=ridge, ridge_rule=args.ridge_rule, select=args.select,
             criterion=args.criterion, compare=args.test_terms, mae=args.mae,
             intercept=not args.no_intercept, drop_aliased=args.drop_aliased, batch_rows=args.batch_rows,
-            progress=prog, **design_kwargs(args),
+            progress=prog, **design_kwargs(args), scheduler=args.scheduler,
         )
     doc = encode_json(report.to_dict(), indent=2)
     if args.out_json:

@@ -84,10 +84,29 @@ def _positioned_parts(source, spec: ModelSpec) -> list | None:
     return out
 
 
+def split_part(part: tuple, spec: ModelSpec, plan: FoldPlan, batch_rows: int) -> FoldAccumulators:
+    """One part's fold factors, ``part`` = (part source, scan position of its first row), read by a
+    cluster worker."""
+    from tallfit.engine.cluster import PART_READERS
+    from tallfit.engine.parallel import read_part
+
+    sub, first_row = part
+    accs = FoldAccumulators.create(spec.term_names + [spec.target], plan)
+    _fill(accs, split_blocks(sub, spec, plan, batch_rows, None, first_row=first_row,
+                             prefetch=read_part(sub, PART_READERS)), plan)
+    return accs
+
+
 def _accumulate_split_parts(parts, spec: ModelSpec, plan: FoldPlan, batch_rows: int, progress) -> FoldAccumulators:
     import threading
 
+    from tallfit.engine.cluster import current
     from tallfit.engine.parallel import offset_progress, part_workers, read_part, run_tasks, tree_merge
+
+    cluster = current()
+    if cluster is not None:  # each part's folds on a cluster worker, merged there by the same tree
+        return cluster.map_merge(split_part, [(sub, first) for sub, _, first in parts], lambda a, b: a.merge(b),
+                                 "tree", spec=spec, plan=plan, batch_rows=batch_rows)
 
     lock = threading.Lock()
     w = part_workers(None, len(spec.term_names) + 1)
