@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.csv  # noqa: F401  (pa.csv)
 import pyarrow.parquet as pq
 import pytest
 
@@ -136,3 +137,17 @@ def test_validation_on_the_cluster_equals_the_local_split(fleet, client):
     for key in ("cv", "holdout", "ridge"):
         assert a[key] == b[key] and a[key] is not None
     np.testing.assert_array_equal(there.fit.inference.estimate, here.fit.inference.estimate)
+
+
+def test_progress_counts_every_part_as_it_finishes(fleet, client, tmp_path):
+    """The progress hook hears of each part once it is done: all rows, Parquet (footer counts)
+    and CSV files (the count the part's result holds)."""
+    seen = []
+    tallfit.fit(fleet, "power_w", FEATS, scheduler=client, progress=lambda n, i: seen.append((n, i)))
+    assert sum(n for n, _ in seen) == 1_200_000 and {i for _, i in seen} == {0, 1}
+    t = pq.read_table(fleet.replace("*", "part-0")).slice(0, 5000)
+    for k in range(2):
+        pa.csv.write_csv(t, tmp_path / f"d{k}.csv")
+    seen.clear()
+    tallfit.fit(str(tmp_path / "*.csv"), "power_w", FEATS, scheduler=client, progress=lambda n, i: seen.append((n, i)))
+    assert sorted(seen) == [(5000, 0), (5000, 1)]

@@ -41,15 +41,19 @@ class ClusterRun:
         self.passes = 0
 
     def map_merge(self, fn: Callable, parts: Sequence, merge: Callable[[Any, Any], Any], shape: str,
-                  **kwargs) -> Any:
+                  progress=None, places: Sequence | None = None, **kwargs) -> Any:
         """``fn(part, **kwargs)`` for every part on the workers, merged there in part order:
-        ``shape`` "tree" as engine.parallel.tree_merge, "chain" as OrderedMerge (a left fold)."""
+        ``shape`` "tree" as engine.parallel.tree_merge, "chain" as OrderedMerge (a left fold).
+        ``progress(rows, file_index)`` is told of each part as it is done (``places``: each
+        part's (source, file index))."""
         if not parts:
             raise ValueError("nothing to merge")
         client = self.client
         # the pass's shared objects (the spec, the model's plan) go to every worker once
         scattered = {k: v if _plain(v) else client.scatter([v], broadcast=True)[0] for k, v in kwargs.items()}
         level = [client.submit(fn, part, pure=False, **scattered) for part in parts]
+        if progress is not None and places is not None:
+            self._follow(level, places, progress)
         if shape == "tree":
             while len(level) > 1:
                 nxt = [client.submit(merge, level[i], level[i + 1], pure=False) for i in range(0, len(level) - 1, 2)]
@@ -67,6 +71,36 @@ class ClusterRun:
         self.parts += len(parts)
         self.passes += 1
         return result
+
+
+    def _follow(self, futures: list, places: Sequence, progress) -> None:
+        """Report each part to ``progress`` as it finishes (rows from the Parquet footers, else
+        the count the part's result holds, fetched as one number)."""
+        import distributed
+
+        rows = {}
+        watch = []
+        for f, (sub, file_index) in zip(futures, places):
+            try:
+                rows[f.key] = (sub.row_count(), file_index)
+                watch.append(f)
+            except DataSourceError:  # text files: the worker knows after reading
+                g = self.client.submit(rows_read, f, pure=False)
+                rows[g.key] = (None, file_index)
+                watch.append(g)
+        for done in distributed.as_completed(watch):
+            n, file_index = rows[done.key]
+            if done.status == "finished":
+                progress(int(done.result()) if n is None else n, file_index)
+
+
+def rows_read(result: Any) -> int:
+    """Rows a part's result says it read (0 when it does not say)."""
+    for holder in (result, getattr(result, "out", None), getattr(result, "W", None), getattr(result, "inner", None)):
+        n = getattr(holder, "n_read", None)
+        if isinstance(n, (int, float)):
+            return int(n)
+    return 0
 
 
 def _plain(value: Any) -> bool:

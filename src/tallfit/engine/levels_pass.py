@@ -83,8 +83,8 @@ def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int 
 
     cluster = current()
     if cluster is not None:  # each part on a cluster worker, merged there part after part
-        return cluster.map_merge(levels_part, [sub for sub, _ in parts], _merge, "chain", spec=spec,
-                                 batch_rows=batch_rows)
+        return cluster.map_merge(levels_part, [sub for sub, _ in parts], _merge, "chain", progress=progress,
+                                 places=parts, spec=spec, batch_rows=batch_rows)
     w = worker_count(workers)
     lock = threading.Lock()
     fold = OrderedMerge(_merge)

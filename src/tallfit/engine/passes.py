@@ -85,7 +85,7 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
     cluster = current()
     if parts is not None and cluster is not None:  # each part read and folded by a cluster worker
         return cluster.map_merge(fold_part, [sub for sub, _ in parts], lambda a, b: a.merge(b), "tree",
-                                 spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows,
+                                 progress=progress, places=parts, spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows,
                                  readers=PART_READERS)
     if parts is not None:
         import threading

@@ -213,7 +213,7 @@ def part_sums(sub, plan: PassPlan, spec, coding, extra: list[str], batch_rows: i
 
 
 def _scan_on_cluster(cluster, plan: PassPlan, parts: list, spec, coding, extra: list[str],
-                     batch_rows: int) -> PartSums:
+                     batch_rows: int, progress=None) -> PartSums:
     """The parts' sums on the cluster's workers, merged there in part order; the bin grids are set
     here first, from the first rows in data order (the rows a local pass would take)."""
     if not plan.ready:
@@ -228,7 +228,7 @@ def _scan_on_cluster(cluster, plan: PassPlan, parts: list, spec, coding, extra: 
                 break
         plan.set_grids(held, whole=rows < SAMPLE_ROWS)
     merged = cluster.map_merge(part_sums, [sub for sub, _ in parts], lambda a, b: a.absorb(b), "chain",
-                               plan=plan, spec=spec, coding=coding, extra=extra, batch_rows=batch_rows)
+                               progress=progress, places=parts, plan=plan, spec=spec, coding=coding, extra=extra, batch_rows=batch_rows)
     merged.plan = plan
     return merged
 
@@ -272,7 +272,7 @@ def second_pass(
     parts = source_parts(source)
     cluster = current()
     if parts is not None and cluster is not None:
-        return _scan_on_cluster(cluster, plan, parts, model.spec, model.coding, extra, batch_rows).finish()
+        return _scan_on_cluster(cluster, plan, parts, model.spec, model.coding, extra, batch_rows, progress).finish()
     if parts is not None:
         return _scan_parts(plan, parts, model.spec, model.coding, extra, batch_rows, progress, workers).finish()
     blocks = design_blocks(source, model.spec, batch_rows, progress, extra_columns=extra, coding=model.coding,

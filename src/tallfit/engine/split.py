@@ -106,7 +106,8 @@ def _accumulate_split_parts(parts, spec: ModelSpec, plan: FoldPlan, batch_rows: 
     cluster = current()
     if cluster is not None:  # each part's folds on a cluster worker, merged there by the same tree
         return cluster.map_merge(split_part, [(sub, first) for sub, _, first in parts], lambda a, b: a.merge(b),
-                                 "tree", spec=spec, plan=plan, batch_rows=batch_rows)
+                                 "tree", progress=progress, places=[(sub, i) for sub, i, _ in parts], spec=spec,
+                                 plan=plan, batch_rows=batch_rows)
 
     lock = threading.Lock()
     w = part_workers(None, len(spec.term_names) + 1)
