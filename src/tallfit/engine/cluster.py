@@ -52,8 +52,7 @@ class ClusterRun:
         # the pass's shared objects (the spec, the model's plan) go to every worker once
         scattered = {k: v if _plain(v) else client.scatter([v], broadcast=True)[0] for k, v in kwargs.items()}
         level = [client.submit(fn, part, pure=False, **scattered) for part in parts]
-        if progress is not None and places is not None:
-            self._follow(level, places, progress)
+        done = list(level)
         if shape == "tree":
             while len(level) > 1:
                 nxt = [client.submit(merge, level[i], level[i + 1], pure=False) for i in range(0, len(level) - 1, 2)]
@@ -67,11 +66,12 @@ class ClusterRun:
                 out = client.submit(merge, out, f, pure=False)
         else:
             raise ValueError(f"shape must be 'tree' or 'chain', not {shape!r}")
+        if progress is not None and places is not None:  # the merges are queued already
+            self._follow(done, places, progress)
         result = out.result()  # a worker's exception (a bad value in a file, say) is raised here
         self.parts += len(parts)
         self.passes += 1
         return result
-
 
     def _follow(self, futures: list, places: Sequence, progress) -> None:
         """Report each part to ``progress`` as it finishes (rows from the Parquet footers, else

@@ -77,9 +77,8 @@ def structured_pass(source, spec: ModelSpec, batch_rows: int, progress, design: 
 
 def _parts_pass(parts, spec: ModelSpec, batch_rows: int, progress, workers: int | None):
     """Every part on its own (W threads), merged in part order as each finishes its turn."""
-    from tallfit.engine.parallel import OrderedMerge, offset_progress, read_part, run_tasks, worker_count
-
     from tallfit.engine.cluster import current
+    from tallfit.engine.parallel import OrderedMerge, offset_progress, read_part, run_tasks, worker_count
 
     cluster = current()
     if cluster is not None:  # each part on a cluster worker, merged there part after part

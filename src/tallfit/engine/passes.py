@@ -85,8 +85,8 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
     cluster = current()
     if parts is not None and cluster is not None:  # each part read and folded by a cluster worker
         return cluster.map_merge(fold_part, [sub for sub, _ in parts], lambda a, b: a.merge(b), "tree",
-                                 progress=progress, places=parts, spec=spec, rows=rows, make=make, fold=fold, pad_rows=pad_rows,
-                                 readers=PART_READERS)
+                                 progress=progress, places=parts, spec=spec, rows=rows, make=make, fold=fold,
+                                 pad_rows=pad_rows, readers=PART_READERS)
     if parts is not None:
         import threading
 
@@ -111,8 +111,9 @@ def fold_pass(source, spec: ModelSpec, batch_rows: int, progress, design: Design
 
 def fold_part(sub, spec: ModelSpec, rows: int, make, fold, pad_rows: int = 0, readers: int = 1,
               pool: BufferPool | None = None, progress=None):
-    """One part's accumulator: ``make()`` folded with every block of the part (``readers``: the
-    workers reading parts at once, 1 on a cluster worker; see engine.parallel.read_part)."""
+    """One part's accumulator: ``make()`` folded with every block of the part (``readers``: how
+    many read parts at once, which sets the part's decoding threads and read-ahead; see
+    engine.parallel.read_part)."""
     from tallfit.engine.local import design_blocks
 
     pool = pool or BufferPool(pad_rows)

@@ -199,8 +199,8 @@ def _part_blocks(plan: PassPlan, sub, spec, coding, extra: list[str], batch_rows
 
 
 def part_sums(sub, plan: PassPlan, spec, coding, extra: list[str], batch_rows: int) -> PartSums:
-    """One part's sums, read and folded by a cluster worker; returned
-    without the plan, which the caller holds."""
+    """One part's sums, read and folded by a cluster worker; returned without the plan (the
+    caller holds it)."""
     pool = BufferPool()
     part = PartSums(plan, sub, pool)
     with single_blas_thread():
@@ -228,7 +228,8 @@ def _scan_on_cluster(cluster, plan: PassPlan, parts: list, spec, coding, extra: 
                 break
         plan.set_grids(held, whole=rows < SAMPLE_ROWS)
     merged = cluster.map_merge(part_sums, [sub for sub, _ in parts], lambda a, b: a.absorb(b), "chain",
-                               progress=progress, places=parts, plan=plan, spec=spec, coding=coding, extra=extra, batch_rows=batch_rows)
+                               progress=progress, places=parts, plan=plan, spec=spec, coding=coding, extra=extra,
+                               batch_rows=batch_rows)
     merged.plan = plan
     return merged
 
