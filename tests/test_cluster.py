@@ -151,3 +151,23 @@ def test_progress_counts_every_part_as_it_finishes(fleet, client, tmp_path):
     seen.clear()
     tallfit.fit(str(tmp_path / "*.csv"), "power_w", FEATS, scheduler=client, progress=lambda n, i: seen.append((n, i)))
     assert sorted(seen) == [(5000, 0), (5000, 1)]
+
+
+def test_predictions_on_the_cluster_equal_the_local_file(fleet, client, tmp_path, capsys):
+    """predict --scheduler: each part scored by a worker into a staging file, joined in order into
+    the output: the same rows, columns and numbers as the local run, and no staging file left."""
+    from tallfit.cli import main
+
+    model = tallfit.fit(fleet, "power_w", FEATS, categorical=["zone"])
+    here = tallfit.predict(model, fleet, out=tmp_path / "here.parquet", intervals=True, passthrough=["host_id"])
+    there = tallfit.predict(model, fleet, out=tmp_path / "there.parquet", intervals=True, passthrough=["host_id"],
+                            scheduler=client)
+    assert there.cluster["parts"] >= 2 and there.rows == here.rows == 1_200_000
+    assert there.rows_outside_training_range == here.rows_outside_training_range
+    assert pq.read_table(tmp_path / "there.parquet").equals(pq.read_table(tmp_path / "here.parquet"))
+    model.save(tmp_path / "m.json")
+    assert main(["predict", str(tmp_path / "m.json"), fleet, "--out", str(tmp_path / "p.csv"), "--scheduler",
+                 client.scheduler.address, "--no-progress"]) == 0
+    assert "scored on the dask cluster" in capsys.readouterr().out
+    assert pa.csv.read_csv(tmp_path / "p.csv").num_rows == 1_200_000
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["here.parquet", "m.json", "p.csv", "there.parquet"]

@@ -42,6 +42,14 @@ class PredictionReport:
     rows_without_group_model: int = 0
     out: str | None = None
     columns: list[str] = field(default_factory=list)
+    cluster: dict | None = None  # where the parts were scored, when on a dask cluster
+
+    def merge(self, other: "PredictionReport") -> "PredictionReport":
+        """The counts of two runs over different rows, added."""
+        counts = {k: getattr(self, k) + getattr(other, k) for k in (
+            "rows", "rows_missing_features", "rows_outside_training_range", "rows_unseen_levels",
+            "rows_without_interval", "rows_without_group_model")}
+        return PredictionReport(**counts, out=self.out, columns=self.columns or other.columns)
 
     def warnings(self) -> list[str]:
         w = []
@@ -268,6 +276,7 @@ def predict(
     out_format: str | None = None,
     progress=None,
     unseen: str = "error",
+    scheduler: Any = None,
 ) -> PredictionReport | pa.Table:
     """Score `data` with `model`.
 
@@ -277,12 +286,21 @@ def predict(
     ``intervals``, ``ci_low``/``ci_high`` (mean response) and ``pi_low``/``pi_high`` (a new row).
     ``unseen``: what to do with a categorical level the model never saw: ``"error"`` (default),
     ``"reference"`` (score as the reference level) or ``"other"`` (as the merged other level, if
-    the model has one; else the reference), counted in the report.
+    the model has one; else the reference), counted in the report. ``scheduler`` (with ``out``):
+    score the parts on a dask cluster (engine/cluster.py), each worker into a staging file beside
+    ``out`` (so the workers must reach that folder), joined in order into ``out``.
     """
     from tallfit.grouped import GroupedFit
 
     grouped = isinstance(model, GroupedFit)
     one = next(iter(model.groups.values())) if grouped else model
+    if scheduler is not None:
+        from tallfit.engine.cluster import on_cluster
+
+        with on_cluster(scheduler):
+            return predict(model, data, out=out, intervals=intervals, level=level, passthrough=passthrough,
+                           batch_rows=batch_rows, format=format, delimiter=delimiter, out_format=out_format,
+                           progress=progress, unseen=unseen)
     level = one.inference.conf_level if level is None else float(level)
     if not 0.0 < level < 1.0:
         raise ValueError(f"interval level must be between 0 and 1 (got {level})")
@@ -303,37 +321,98 @@ def predict(
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
     read_cols = list(dict.fromkeys(prediction_columns(spec) + by + list(passthrough)))
-    scorer = _GroupScorer(model, intervals, level, unseen) if grouped else _Scorer(model, intervals, level, unseen)
+    args = dict(model=model, intervals=intervals, level=level, unseen=unseen, passthrough=list(passthrough),
+                read_cols=read_cols, batch_rows=batch_rows)
+    if target is not None:
+        from tallfit.engine.cluster import current
+        from tallfit.engine.parallel import source_parts
+
+        cluster = current()
+        parts = source_parts(source) if cluster is not None else None
+        if parts is not None:
+            return _predict_on_cluster(cluster, parts, target, fmt, args, progress)
+    scorer = _make_scorer(model, intervals, level, unseen)
     report = PredictionReport(out=str(target) if target else None)
-
-    def tables():
-        for chunk in source.batches(read_cols, batch_rows):
-            cols = scorer.score(chunk.batch, report, chunk_label(source, chunk))
-            arrays = [chunk.batch.column(c) for c in passthrough] + [_to_array(v) for v in cols.values()]
-            names = list(passthrough) + list(cols)
-            if progress is not None:
-                progress(chunk.batch.num_rows, chunk.file_index)
-            yield pa.RecordBatch.from_arrays(arrays, names=names)
-
+    batches = _scored(scorer, source, read_cols, list(passthrough), batch_rows, report, progress)
     if target is None:
-        batches = list(tables())
+        batches = list(batches)
         if not batches:
             return pa.table({"prediction": pa.array([], pa.float64())})
         return pa.Table.from_batches(batches)
     with atomic_path(target) as tmp:
-        writer = None
-        try:
-            for batch in prefetched(tables(), depth=2):
-                if writer is None:
-                    writer = _open_writer(tmp, fmt, batch.schema)
-                writer.write_batch(batch)
-                report.columns = batch.schema.names
+        _write(prefetched(batches, depth=2), tmp, fmt, report)
+    return report
+
+
+def _make_scorer(model, intervals: bool, level: float, unseen: str):
+    from tallfit.grouped import GroupedFit
+
+    if isinstance(model, GroupedFit):
+        return _GroupScorer(model, intervals, level, unseen)
+    return _Scorer(model, intervals, level, unseen)
+
+
+def _scored(scorer, source, read_cols: list[str], passthrough: list[str], batch_rows: int,
+            report: PredictionReport, progress=None):
+    """The output batches of a source: its pass-through columns and the scores."""
+    for chunk in source.batches(read_cols, batch_rows):
+        cols = scorer.score(chunk.batch, report, chunk_label(source, chunk))
+        arrays = [chunk.batch.column(c) for c in passthrough] + [_to_array(v) for v in cols.values()]
+        names = list(passthrough) + list(cols)
+        if progress is not None:
+            progress(chunk.batch.num_rows, chunk.file_index)
+        yield pa.RecordBatch.from_arrays(arrays, names=names)
+
+
+def _write(batches, path: Path, fmt: str, report: PredictionReport) -> None:
+    """Write the batches to ``path`` (a file with only a prediction column when there are none)."""
+    writer = None
+    try:
+        for batch in batches:
             if writer is None:
-                empty = pa.schema([("prediction", pa.float64())])
-                writer = _open_writer(tmp, fmt, empty)
-        finally:
-            if writer is not None:
-                writer.close()
+                writer = _open_writer(path, fmt, batch.schema)
+            writer.write_batch(batch)
+            report.columns = batch.schema.names
+        if writer is None:
+            writer = _open_writer(path, fmt, pa.schema([("prediction", pa.float64())]))
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def score_part(part: tuple, model, intervals: bool, level: float, unseen: str, passthrough: list[str],
+               read_cols: list[str], batch_rows: int) -> PredictionReport:
+    """Score one part, ``part`` = (part source, staging file), into that Parquet file (a cluster
+    worker's share of a prediction run)."""
+    sub, staged = part
+    report = PredictionReport()
+    _write(_scored(_make_scorer(model, intervals, level, unseen), sub, read_cols, passthrough, batch_rows, report),
+           Path(staged), "parquet", report)
+    return report
+
+
+def _predict_on_cluster(cluster, parts: list, target: Path, fmt: str, args: dict, progress) -> PredictionReport:
+    """Each part scored by a cluster worker into a staging file beside ``target`` (the workers
+    must reach that folder: a shared file system), then the files joined in part order into the
+    output, atomically; the staging folder goes in any case."""
+    import shutil
+    import tempfile
+
+    import pyarrow.parquet as pq
+
+    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".parts", dir=target.parent))
+    try:
+        staged = [str(staging / f"part-{i:06d}.parquet") for i in range(len(parts))]
+        report = cluster.map_merge(score_part, [(sub, f) for (sub, _), f in zip(parts, staged)],
+                                   lambda a, b: a.merge(b), "tree", progress=progress, places=parts, **args)
+        report.out = str(target)
+        batches = (b for f in staged if pq.ParquetFile(f).metadata.num_rows
+                   for b in pq.ParquetFile(f).iter_batches(batch_size=args["batch_rows"]))
+        with atomic_path(target) as tmp:
+            _write(batches, tmp, fmt, report)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    report.cluster = {"scheduler": cluster.address, "parts": len(parts)}
     return report
 
 

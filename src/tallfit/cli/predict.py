@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import sys
 
-from tallfit.cli.common import add_data_options, open_data, progress_for, split_list
+from tallfit.cli.common import add_data_options, add_scheduler_option, open_data, progress_for, split_list
 
 NAME = "predict"
 HELP = "score new data with a saved model"
@@ -19,6 +19,7 @@ def register(sub) -> None:
     p.add_argument("--level", type=float, default=None, help="interval level (default: the model's)")
     p.add_argument("--unseen", choices=["error", "reference", "other"], default="error", help="categorical levels the model never saw: stop (default), or score as the reference or the merged other level")
     p.add_argument("--keep", type=split_list, default=[], metavar="COLS", help="comma-separated columns to copy through (an id, a timestamp)")
+    add_scheduler_option(p)
 
 
 def run(args) -> int:
@@ -40,8 +41,11 @@ def run(args) -> int:
             batch_rows=args.batch_rows,
             progress=prog,
             unseen=args.unseen,
+            scheduler=args.scheduler,
         )
-    print(f"{report.rows:,} predictions written to {args.out} (columns: {', '.join(report.columns)})")
+    where = f" (scored on the dask cluster {report.cluster['scheduler']}, {report.cluster['parts']} parts)" \
+        if report.cluster else ""
+    print(f"{report.rows:,} predictions written to {args.out}{where} (columns: {', '.join(report.columns)})")
     for w in report.warnings():
         print(f"note: {w}", file=sys.stderr)
     return 0
