@@ -5,7 +5,8 @@ zstd Parquet). The cluster is a LocalCluster of one worker process per core on t
 the figure is the cluster path's overhead (part descriptions out, accumulators back, the merges
 as tasks, a process per worker instead of a thread); on a real cluster the parts spread over more
 machines. In each of --repeats rounds, one after the other: the fit on local threads, the fit on
-the cluster, the second pass (robust sums only, HC3) on local threads and on the cluster.
+the cluster, the second pass (robust sums only, HC3) on local threads and on the cluster, and
+predict (to one Parquet file; local: one stream, cluster: a staging file per part, then joined).
 Printed: median seconds, the median per-round ratio cluster ÷ local, and this (the client)
 process's peak RSS (the workers hold the batches; only accumulators come back).
 
@@ -53,8 +54,11 @@ def main() -> None:
 
         fit = lambda: tallfit.fit(data, TARGET, feats)  # noqa: E731
         robust = lambda: second_pass(model, data, diagnostics=False)  # noqa: E731
+        scored = OUT / "cluster-predictions.parquet"
+        score = lambda: tallfit.predict(model, data, out=scored)  # noqa: E731
         cases = {"fit, local threads": fit, "fit, cluster": on(fit),
-                 "second pass (HC3), local threads": robust, "second pass (HC3), cluster": on(robust)}
+                 "second pass (HC3), local threads": robust, "second pass (HC3), cluster": on(robust),
+                 "predict, local": score, "predict, cluster": on(score)}
         for run in cases.values():
             run()  # numba caches and imports, here and on the workers
         seconds, _ = alternating_rounds(cases, args.repeats)
@@ -64,7 +68,8 @@ def main() -> None:
     print(f"{args.rows:,} rows × 20 features, LocalCluster of {worker_count(None)} worker processes, "
           f"median of {args.repeats} rounds")
     names = list(cases)
-    for local, remote in (names[0:2], names[2:4]):
+    scored.unlink(missing_ok=True)
+    for local, remote in (names[0:2], names[2:4], names[4:6]):
         ratio = statistics.median(r / t for r, t in zip(seconds[remote], seconds[local]))
         print(f"{local:34s} {statistics.median(seconds[local]):6.2f} s")
         print(f"{remote:34s} {statistics.median(seconds[remote]):6.2f} s   × local {ratio:.2f}")
