@@ -277,6 +277,7 @@ def predict(
     progress=None,
     unseen: str = "error",
     scheduler: Any = None,
+    workers: int | None = None,
 ) -> PredictionReport | pa.Table:
     """Score `data` with `model`.
 
@@ -288,7 +289,8 @@ def predict(
     ``"reference"`` (score as the reference level) or ``"other"`` (as the merged other level, if
     the model has one; else the reference), counted in the report. ``scheduler`` (with ``out``):
     score the parts on a dask cluster (engine/cluster.py), each worker into a staging file beside
-    ``out`` (so the workers must reach that folder), joined in order into ``out``.
+    ``out`` (so the workers must reach that folder), joined in order into ``out``. A data set of
+    several parts is scored so here too, on ``workers`` threads (default: every core; 1: one stream).
     """
     from tallfit.grouped import GroupedFit
 
@@ -300,7 +302,7 @@ def predict(
         with on_cluster(scheduler):
             return predict(model, data, out=out, intervals=intervals, level=level, passthrough=passthrough,
                            batch_rows=batch_rows, format=format, delimiter=delimiter, out_format=out_format,
-                           progress=progress, unseen=unseen)
+                           progress=progress, unseen=unseen, workers=workers)
     level = one.inference.conf_level if level is None else float(level)
     if not 0.0 < level < 1.0:
         raise ValueError(f"interval level must be between 0 and 1 (got {level})")
@@ -325,12 +327,11 @@ def predict(
                 read_cols=read_cols, batch_rows=batch_rows)
     if target is not None:
         from tallfit.engine.cluster import current
-        from tallfit.engine.parallel import source_parts
+        from tallfit.engine.parallel import source_parts, worker_count
 
-        cluster = current()
-        parts = source_parts(source) if cluster is not None else None
-        if parts is not None:
-            return _predict_on_cluster(cluster, parts, target, fmt, args, progress)
+        parts = source_parts(source)
+        if parts is not None and (current() is not None or worker_count(workers) > 1):
+            return _predict_parts(current(), parts, target, fmt, args, progress, worker_count(workers))
     scorer = _make_scorer(model, intervals, level, unseen)
     report = PredictionReport(out=str(target) if target else None)
     batches = _scored(scorer, source, read_cols, list(passthrough), batch_rows, report, progress)
@@ -380,43 +381,106 @@ def _write(batches, path: Path, fmt: str, report: PredictionReport) -> None:
             writer.close()
 
 
+def _staged_batches(files: list[str]):
+    """The non-empty batches of the staging files, in order (each file memory-mapped in turn)."""
+    for f in files:
+        with pa.memory_map(f) as source:
+            reader = pa.ipc.open_file(source)
+            for i in range(reader.num_record_batches):
+                batch = reader.get_batch(i)
+                if batch.num_rows:
+                    yield batch
+
+
 def score_part(part: tuple, model, intervals: bool, level: float, unseen: str, passthrough: list[str],
-               read_cols: list[str], batch_rows: int) -> PredictionReport:
-    """Score one part, ``part`` = (part source, staging file), into that Parquet file (a cluster
-    worker's share of a prediction run)."""
+               read_cols: list[str], batch_rows: int, readers: int = 2, progress=None) -> PredictionReport:
+    """Score one part, ``part`` = (part source, staging file), into that Parquet file (one
+    worker's share of a prediction run; ``readers``: how many read parts at once)."""
+    from tallfit.engine.parallel import read_part
+
     sub, staged = part
     report = PredictionReport()
-    _write(_scored(_make_scorer(model, intervals, level, unseen), sub, read_cols, passthrough, batch_rows, report),
-           Path(staged), "parquet", report)
+    read_part(sub, readers)
+    _write(_scored(_make_scorer(model, intervals, level, unseen), sub, read_cols, passthrough, batch_rows, report,
+                   progress), Path(staged), "staging", report)
     return report
 
 
-def _predict_on_cluster(cluster, parts: list, target: Path, fmt: str, args: dict, progress) -> PredictionReport:
-    """Each part scored by a cluster worker into a staging file beside ``target`` (the workers
-    must reach that folder: a shared file system), then the files joined in part order into the
-    output, atomically; the staging folder goes in any case."""
+def _predict_parts(cluster, parts: list, target: Path, fmt: str, args: dict, progress, workers: int) -> PredictionReport:
+    """Each part scored by a worker (a thread per core here, or a cluster worker, whose folder
+    beside ``target`` must then be shared) into a staging file beside ``target``, then the files
+    joined in part order into the output, atomically; the staging folder goes in any case."""
     import shutil
     import tempfile
+    import threading
 
-    import pyarrow.parquet as pq
+    from tallfit.engine.parallel import offset_progress, run_tasks, tree_merge
 
     staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.", suffix=".parts", dir=target.parent))
     try:
-        staged = [str(staging / f"part-{i:06d}.parquet") for i in range(len(parts))]
-        report = cluster.map_merge(score_part, [(sub, f) for (sub, _), f in zip(parts, staged)],
-                                   lambda a, b: a.merge(b), "tree", progress=progress, places=parts, **args)
+        staged = [str(staging / f"part-{i:06d}.arrow") for i in range(len(parts))]
+        items = [(sub, f) for (sub, _), f in zip(parts, staged)]
+        if cluster is not None:
+            report = cluster.map_merge(score_part, items, lambda a, b: a.merge(b), "tree", progress=progress,
+                                       places=parts, **args)
+            with atomic_path(target) as tmp:
+                _write(_staged_batches(staged), tmp, fmt, report)
+        else:  # the output is written while later parts are scored: each part as soon as it is its turn
+            lock = threading.Lock()
+            ready = [threading.Event() for _ in items]
+            stop = threading.Event()
+            joined = PredictionReport()
+            failures: list[BaseException] = []
+
+            def in_turn():
+                for event, f in zip(ready, staged):
+                    event.wait()
+                    if stop.is_set():
+                        return
+                    yield from _staged_batches([f])
+                    os.remove(f)
+
+            def join(tmp: Path) -> None:
+                try:
+                    _write(in_turn(), tmp, fmt, joined)
+                except BaseException as exc:  # handed to the caller
+                    failures.append(exc)
+
+            def task(k: int, item: tuple, file_index: int):
+                def run() -> PredictionReport:
+                    out = score_part(item, **args, readers=workers, progress=offset_progress(progress, file_index, lock))
+                    ready[k].set()
+                    return out
+                return run
+
+            with atomic_path(target) as tmp:
+                writer = threading.Thread(target=join, args=(tmp,), name="tallfit-join", daemon=True)
+                writer.start()
+                try:
+                    reports = run_tasks([task(k, item, i) for k, (item, (_, i)) in enumerate(zip(items, parts))],
+                                        workers)
+                except BaseException:
+                    stop.set()
+                    for event in ready:
+                        event.set()
+                    writer.join()
+                    raise
+                writer.join()
+                if failures:
+                    raise failures[0]
+            report = tree_merge(reports, lambda a, b: a.merge(b))
+            report.columns = joined.columns
         report.out = str(target)
-        batches = (b for f in staged if pq.ParquetFile(f).metadata.num_rows
-                   for b in pq.ParquetFile(f).iter_batches(batch_size=args["batch_rows"]))
-        with atomic_path(target) as tmp:
-            _write(batches, tmp, fmt, report)
     finally:
         shutil.rmtree(staging, ignore_errors=True)
-    report.cluster = {"scheduler": cluster.address, "parts": len(parts)}
+    if cluster is not None:
+        report.cluster = {"scheduler": cluster.address, "parts": len(parts)}
     return report
 
 
 def _open_writer(path: Path, fmt: str, schema: pa.Schema):
+    if fmt == "staging":  # a part's scores on their way to the output: Arrow IPC, nothing to encode
+        return pa.ipc.new_file(str(path), schema)
     if fmt == "parquet":
         import pyarrow.parquet as pq
 
