@@ -171,3 +171,31 @@ def test_predictions_on_the_cluster_equal_the_local_file(fleet, client, tmp_path
     assert "scored on the dask cluster" in capsys.readouterr().out
     assert pa.csv.read_csv(tmp_path / "p.csv").num_rows == 1_200_000
     assert sorted(p.name for p in tmp_path.iterdir()) == ["here.parquet", "m.json", "p.csv", "there.parquet"]
+
+
+def test_per_group_models_on_the_cluster(client, tmp_path):
+    """fit --by on the cluster: each part's group factors on a worker, merged part after part:
+    every group's model equals the one-stream fit (to rounding) and statsmodels on that group's
+    rows of grunfeld (statsmodels ships it), a categorical's levels met in different parts included."""
+    sm = pytest.importorskip("statsmodels.api")
+    d = sm.datasets.grunfeld.load_pandas().data
+    d["era"] = np.where(d.year < 1945, "early", "late")
+    table = pa.table({"invest": d.invest.to_numpy(float), "value": d.value.to_numpy(float),
+                      "capital": d.capital.to_numpy(float), "firm": d.firm.astype(str).to_numpy(),
+                      "era": d.era.to_numpy()})
+    for k in range(4):
+        pq.write_table(table.slice(55 * k, 55), tmp_path / f"g{k}.parquet")
+    there = tallfit.fit(str(tmp_path / "*.parquet"), "invest", ["value", "capital"], categorical=["firm"], by="era",
+                        scheduler=client)
+    here = tallfit.fit(table, "invest", ["value", "capital"], categorical=["firm"], by="era")
+    assert set(there.groups) == set(here.groups) == {"early", "late"}
+    for key in ("early", "late"):
+        a, b = there.groups[key], here.groups[key]
+        assert a.terms == b.terms and a.options["cluster"]["parts"] == 4
+        np.testing.assert_allclose(a.inference.estimate, b.inference.estimate, rtol=1e-10)
+        rows = d[d.era == key]
+        firms = [t.split("[")[1].rstrip("]") for t in a.terms if t.startswith("firm[")]
+        X = np.column_stack([np.ones(len(rows)), rows.value, rows.capital]
+                            + [(rows.firm.to_numpy() == f).astype(float) for f in firms])
+        np.testing.assert_allclose(a.inference.std_error, sm.OLS(rows.invest.to_numpy(float), X).fit().bse, rtol=1e-8)
+    assert there.n_read == here.n_read == len(d)

@@ -200,3 +200,4 @@ def test_checking_one_group_equals_statsmodels_on_its_rows(tmp_path):
         diagnose(g, path, group="middle")
     with pytest.raises(DesignError, match="not one per group"):
         diagnose(g.groups["late"], path, group="late")
+

@@ -185,14 +185,58 @@ class GroupAccumulators:
                     for lvl, c in counts.items():
                         d[lvl] = d.get(lvl, 0) + c
 
+    def merge(self, other: "GroupAccumulators") -> "GroupAccumulators":
+        """The groups of the rows of both (those of the rows that follow: ``other``)."""
+        out = GroupAccumulators(self.names, self.by, self.budget)
+        out.accs = dict(self.accs)
+        for key, acc in other.accs.items():
+            out.accs[key] = out.accs[key].merge(acc) if key in out.accs else acc
+        out._check_budget(max((len(a.names) for a in out.accs.values()), default=0))
+        out.null_rows, out.n_read, out.n_used = (self.null_rows + other.null_rows, self.n_read + other.n_read,
+                                                 self.n_used + other.n_used)
+        out.dropped = dict(self.dropped)
+        for name, count in other.dropped.items():
+            out.dropped[name] = out.dropped.get(name, 0) + count
+        return out
 
-def fit_groups(source, spec, batch_rows, progress, design, finalize, budget: int = DEFAULT_MEMORY_BUDGET) -> GroupedFit:
-    """One pass filling a factor per group, then a model per group (``finalize(acc) -> FitResult``)."""
+
+def groups_part(sub, spec, batch_rows: int, budget: int, readers: int = 2, progress=None) -> GroupAccumulators:
+    """One part's group factors (a cluster worker's share of the pass; ``readers``: how many read
+    parts at once, see engine.parallel.read_part)."""
+    from tallfit.design.design import Design
     from tallfit.engine.local import design_blocks
+    from tallfit.engine.parallel import read_part
 
+    groups = GroupAccumulators(spec.term_names + [spec.target], list(spec.by), budget)
+    for block in design_blocks(sub, spec, batch_rows, progress, extra_columns=list(spec.by), design=Design(spec),
+                               prefetch=read_part(sub, readers)):
+        groups.update_block(block)
+    return groups
+
+
+def _group_pass(source, spec, batch_rows: int, progress, design, budget: int) -> GroupAccumulators:
+    """The factors of every group: one stream, decoded a thread ahead; on a dask cluster the parts
+    of the data set on its workers, merged part after part. (Parts on local threads measured
+    slower with many groups: the per-group loop holds the GIL; 2,000 groups × 10^7 rows took 50 s
+    against 27 s in one stream, 5 groups 1.8 s against 2.4 s.)"""
+    from tallfit.engine.cluster import current
+    from tallfit.engine.local import design_blocks
+    from tallfit.engine.parallel import source_parts
+
+    cluster = current()
+    parts = source_parts(source) if cluster is not None else None
+    if parts is not None:
+        return cluster.map_merge(groups_part, [sub for sub, _ in parts], lambda a, b: a.merge(b), "chain",
+                                 progress=progress, places=parts, spec=spec, batch_rows=batch_rows, budget=budget)
     groups = GroupAccumulators(spec.term_names + [spec.target], list(spec.by), budget)
     for block in design_blocks(source, spec, batch_rows, progress, extra_columns=list(spec.by), design=design):
         groups.update_block(block)
+    return groups
+
+
+def fit_groups(source, spec, batch_rows, progress, design, finalize, budget: int = DEFAULT_MEMORY_BUDGET) -> GroupedFit:
+    """One pass filling a factor per group, then a model per group (``finalize(acc) -> FitResult``)."""
+    groups = _group_pass(source, spec, batch_rows, progress, design, budget)
     fitted: dict[str, FitResult] = {}
     failed: dict[str, str] = {}
     rows = {}
