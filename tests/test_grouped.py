@@ -201,3 +201,38 @@ def test_checking_one_group_equals_statsmodels_on_its_rows(tmp_path):
     with pytest.raises(DesignError, match="not one per group"):
         diagnose(g.groups["late"], path, group="late")
 
+
+
+def test_group_factors_merge_across_level_orders():
+    """Two parts that met a categorical's levels in different orders: their merged group factors
+    give every group the Gram of all its rows (a property: R'R = Σ xxᵀ, in the union's columns)."""
+    from tallfit.design.design import Design
+    from tallfit.design.build import make_spec
+    from tallfit.grouped import GroupAccumulators
+
+    rng = np.random.default_rng(5)
+    spec = make_spec("y", ["x"], categorical=["c"], by=["g"])
+    tables = [pa.table({"x": rng.normal(size=400), "c": rng.choice(levels, 400), "g": rng.choice(["a", "b"], 400),
+                        "y": rng.normal(size=400)}) for levels in (["p", "q", "r"], ["r", "s", "p"])]
+    parts = []
+    for t in tables:
+        acc = GroupAccumulators(spec.term_names + [spec.target], list(spec.by))
+        design = Design(spec)
+        for b in t.to_batches(max_chunksize=97):
+            block = design.block(b, "test", extra_columns=["g"])
+            acc.update_block(block)
+        parts.append(acc)
+    merged = parts[0].merge(parts[1])
+    whole = pa.concat_tables(tables)
+    for key in ("a", "b"):
+        acc = merged.accumulator(key)
+        rows = np.array(whole["g"].to_pylist()) == key
+        c = np.array(whole["c"].to_pylist())[rows]
+        cols = {"(intercept)": np.ones(rows.sum()), "x": whole["x"].to_numpy()[rows], "y": whole["y"].to_numpy()[rows]}
+        for name in acc.names:
+            if name.startswith("c["):
+                cols[name] = (c == name[2:-1]).astype(float)
+        X = np.column_stack([cols[n] for n in acc.names])
+        np.testing.assert_allclose(acc.R.T @ acc.R, X.T @ X, rtol=1e-10, atol=1e-8)
+        assert acc.n_used == rows.sum()
+        assert acc.level_counts["c"] == {lvl: int((c == lvl).sum()) for lvl in set(c)}

@@ -189,14 +189,18 @@ class GroupAccumulators:
             new[:cap] = was
 
     def _expand(self, names: list[str]) -> None:
-        """New design columns (levels first seen now) as zero columns of every group's factor,
-        as FactorAccumulator.expand does for one."""
+        """Every group's factor in the columns ``names`` (a superset: new columns are zero, as in
+        FactorAccumulator.expand; old ones in another order are re-triangularised, as in
+        FactorAccumulator.aligned)."""
         index = {n: i for i, n in enumerate(names)}
         pos = np.asarray([index[n] for n in self.names])
         cap, k = self.R.shape[0], len(names)
         R, lo, hi, nz = np.zeros((cap, k, k)), np.full((cap, k), np.inf), np.full((cap, k), -np.inf), \
             np.zeros((cap, k), dtype=np.int64)
-        R[:, pos[:, None], pos[None, :]] = self.R
+        R[:, pos[:, None], pos[None, :]] = self.R  # the same Gram, zeros in the new columns
+        if np.any(np.diff(pos) <= 0):  # another part met the levels in another order: re-triangularise
+            for g in range(len(self.slots)):
+                R[g] = np.triu(np.linalg.qr(R[g], mode="r"))
         lo[:, pos], hi[:, pos], nz[:, pos] = self.col_min, self.col_max, self.nonzero
         self.R, self.col_min, self.col_max, self.nonzero = R, lo, hi, nz
         self.names = list(names)
