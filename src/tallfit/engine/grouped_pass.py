@@ -13,6 +13,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from tallfit.design.design import Design, check_design_columns
 from tallfit.engine.cluster import current
@@ -24,6 +25,7 @@ from tallfit.errors import ColumnNotFoundError, DesignError
 from tallfit.grouped import group_rows
 from tallfit.inputs import as_source, source_label
 from tallfit.kernels.lapack_calls import single_blas_thread
+from tallfit.solve.robust import SandwichSums
 
 
 def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] = (),
@@ -51,10 +53,12 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
                              places=parts, models=models, plans=plans, by=by, cluster=cluster, batch_rows=batch_rows)
         for key, part in sums.items():
             part.plan = plans[key]
+    elif _batched(spec, plans, cluster):
+        sums = _batched_sums(source, models, plans, by, batch_rows, progress)
     else:
         sums = _group_sums(source, models, plans, by, cluster, batch_rows, progress)
     for key, model in models.items():
-        sp = sums[key].finish()
+        sp = sums[key].finish() if isinstance(sums[key], PartSums) else sums[key]
         try:
             model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust)
         except DesignError as exc:  # one group's problem (too few clusters, say) is that group's
@@ -118,3 +122,71 @@ def grouped_part(sub, models: dict, plans: dict, by: list[str], cluster: list[st
 def _merge_group_sums(a: dict, b: dict) -> dict:
     """The group sums of two parts, the second's rows after the first's."""
     return {key: a[key].absorb(b[key]) for key in a}
+
+
+def _batched(spec, plans: dict, cluster: list[str]) -> bool:
+    """Whether the groups' sums can come from one sweep per block (kernels/group_sandwich.py):
+    one shared design (no categoricals), one HC estimator, no clusters, no frequency weights."""
+    from tallfit.diagnostics.kernels import SCORES_ALL
+
+    first = next(iter(plans.values()))
+    return (not spec.categorical and not cluster and not first.frequency
+            and first.absorbed is None and all(p.robust is None or str(p.robust).upper() != "ALL" for p in plans.values())
+            and SandwichSums.create(1, first.robust).mode != SCORES_ALL)
+
+
+def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None) -> dict:
+    """Every group's sandwich sums from one sweep per block; returned as SecondPass values with
+    the sandwich only (what robust_for_model reads)."""
+    import numpy as np
+
+    from tallfit.engine.pass_sums import SecondPass
+    from tallfit.grouped import group_keys
+    from tallfit.kernels.group_sandwich import group_sandwich
+
+    keys = list(models)
+    slot = {k: i for i, k in enumerate(keys)}
+    G, P = len(keys), max(p.p for p in plans.values())
+    cols, widths = np.zeros((G, P), dtype=np.int64), np.zeros(G, dtype=np.int64)
+    Rinv, beta = np.zeros((G, P, P)), np.zeros((G, P))
+    for k, plan in plans.items():
+        g, p = slot[k], plan.p
+        cols[g, :p], widths[g] = plan.cols, p
+        Rinv[g, :p, :p], beta[g, :p] = plan.R11_inv, plan.beta
+    mode = SandwichSums.create(1, next(iter(plans.values())).robust).mode
+    gram, score_sum = np.zeros((G, P, P)), np.zeros((G, P))
+    rss, rows, max_h = np.zeros(G), np.zeros(G, dtype=np.int64), np.zeros(G)
+    n_read, n_used, dropped = 0, 0, {}
+    first = next(iter(models.values()))
+    design = Design(first.spec, coding=first.coding)
+    read = list(dict.fromkeys(first.spec.input_columns + by))
+
+    def blocks():
+        for chunk in source.batches(read, batch_rows):
+            block = design.block(chunk.batch, chunk_label(source, chunk), extra_columns=by)
+            if progress is not None:
+                progress(chunk.batch.num_rows, chunk.file_index)
+            yield block
+
+    for block in prefetched(blocks(), depth=2):
+        n_read += block.n_read
+        for name, count in block.dropped_by_column.items():
+            dropped[name] = dropped.get(name, 0) + count
+        if not block.n_used:
+            continue
+        encoded = pc.dictionary_encode(group_keys([block.extra[c] for c in by]))
+        if isinstance(encoded, pa.ChunkedArray):
+            encoded = encoded.combine_chunks()
+        slot_of = np.asarray([slot.get(k, -1) for k in encoded.dictionary.to_pylist()] + [-1], dtype=np.int64)
+        codes = slot_of[encoded.indices.fill_null(len(encoded.dictionary)).to_numpy(zero_copy_only=False)
+                        .astype(np.int64)]
+        n_used += int(np.count_nonzero(codes >= 0))
+        group_sandwich(block.A, codes, cols, widths, Rinv, beta, mode, gram, score_sum, rss, rows, max_h)
+    out = {}
+    for k, plan in plans.items():
+        g, p = slot[k], plan.p
+        sums = SandwichSums(p, mode, int(rows[g]), gram[g, :p, :p].copy(), score_sum[g, :p].copy(), float(rss[g]),
+                            float(max_h[g]))
+        out[k] = SecondPass(terms=list(plan.terms), features=list(plan.features), n_read=n_read, n_used=int(rows[g]),
+                            dropped_by_column=dict(dropped), sandwich=sums)
+    return out
