@@ -29,6 +29,14 @@ def features_for(p: int) -> list[str]:
     return list(BASE_FEATURES) + list(extra_feature_names(p - len(BASE_FEATURES)))
 
 
+def p20_file(rows: int):
+    """bench/out/p20_n{rows}_zstd.parquet (run_all.py writes it), or a clear stop when it is missing."""
+    path = OUT / f"p20_n{rows}_zstd.parquet"
+    if not path.exists():
+        raise SystemExit(f"{path} is missing: run bench/run_all.py first (it writes the data)")
+    return path
+
+
 def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
 

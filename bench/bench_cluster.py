@@ -19,7 +19,7 @@ import argparse
 import resource
 import statistics
 
-from _measure import OUT, TARGET, alternating_rounds, features_for
+from _measure import OUT, TARGET, alternating_rounds, features_for, p20_file
 
 
 def main() -> None:
@@ -34,11 +34,8 @@ def main() -> None:
     from tallfit.engine.parallel import worker_count
     from tallfit.engine.second_pass import second_pass
 
-    path = OUT / f"p20_n{args.rows}_zstd.parquet"
-    if not path.exists():
-        raise SystemExit(f"{path} is missing: run bench/run_all.py first (it writes the data)")
     feats = features_for(20)
-    data = str(path)
+    data = str(p20_file(args.rows))
     cluster = distributed.LocalCluster(n_workers=worker_count(None), threads_per_worker=1, processes=True,
                                        dashboard_address=None, silence_logs=50)
     client = distributed.Client(cluster)

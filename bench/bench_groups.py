@@ -14,7 +14,7 @@ from __future__ import annotations
 import argparse
 import statistics
 
-from _measure import OUT, TARGET, alternating_rounds, features_for
+from _measure import TARGET, alternating_rounds, features_for, p20_file
 
 
 def main() -> None:
@@ -24,10 +24,7 @@ def main() -> None:
     args = ap.parse_args()
     import tallfit
 
-    path = OUT / f"p20_n{args.rows}_zstd.parquet"
-    if not path.exists():
-        raise SystemExit(f"{path} is missing: run bench/run_all.py first (it writes the data)")
-    data, feats = str(path), features_for(20)[:6]
+    data, feats = str(p20_file(args.rows)), features_for(20)[:6]
     cases = {"plain fit": lambda: tallfit.fit(data, TARGET, feats),
              "by region (5 groups)": lambda: tallfit.fit(data, TARGET, feats, by="region"),
              "by host_id (2,000 groups)": lambda: tallfit.fit(data, TARGET, feats, by="host_id")}

@@ -173,10 +173,8 @@ def test_predictions_on_the_cluster_equal_the_local_file(fleet, client, tmp_path
     assert sorted(p.name for p in tmp_path.iterdir()) == ["here.parquet", "m.json", "p.csv", "there.parquet"]
 
 
-def test_per_group_models_on_the_cluster(client, tmp_path):
-    """fit --by on the cluster: each part's group factors on a worker, merged part after part:
-    every group's model equals the one-stream fit (to rounding) and statsmodels on that group's
-    rows of grunfeld (statsmodels ships it), a categorical's levels met in different parts included."""
+def _grunfeld_in_four_files(folder):
+    """grunfeld (statsmodels ships it) with an era column, written as four Parquet files."""
     sm = pytest.importorskip("statsmodels.api")
     d = sm.datasets.grunfeld.load_pandas().data
     d["era"] = np.where(d.year < 1945, "early", "late")
@@ -184,7 +182,15 @@ def test_per_group_models_on_the_cluster(client, tmp_path):
                       "capital": d.capital.to_numpy(float), "firm": d.firm.astype(str).to_numpy(),
                       "era": d.era.to_numpy()})
     for k in range(4):
-        pq.write_table(table.slice(55 * k, 55), tmp_path / f"g{k}.parquet")
+        pq.write_table(table.slice(55 * k, 55), folder / f"g{k}.parquet")
+    return sm, d, table
+
+
+def test_per_group_models_on_the_cluster(client, tmp_path):
+    """fit --by on the cluster: each part's group factors on a worker, merged part after part:
+    every group's model equals the one-stream fit (to rounding) and statsmodels on that group's
+    rows of grunfeld (statsmodels ships it), a categorical's levels met in different parts included."""
+    sm, d, table = _grunfeld_in_four_files(tmp_path)
     there = tallfit.fit(str(tmp_path / "*.parquet"), "invest", ["value", "capital"], categorical=["firm"], by="era",
                         scheduler=client)
     here = tallfit.fit(table, "invest", ["value", "capital"], categorical=["firm"], by="era")
@@ -205,14 +211,7 @@ def test_per_group_robust_errors_on_the_cluster(client, tmp_path):
     """fit --by --robust --cluster on the cluster: each part's group sums on a worker, merged part
     after part; HC3 and firm-clustered errors per era equal statsmodels on that era's rows of
     grunfeld."""
-    sm = pytest.importorskip("statsmodels.api")
-    d = sm.datasets.grunfeld.load_pandas().data
-    d["era"] = np.where(d.year < 1945, "early", "late")
-    table = pa.table({"invest": d.invest.to_numpy(float), "value": d.value.to_numpy(float),
-                      "capital": d.capital.to_numpy(float), "firm": d.firm.astype(str).to_numpy(),
-                      "era": d.era.to_numpy()})
-    for k in range(4):
-        pq.write_table(table.slice(55 * k, 55), tmp_path / f"g{k}.parquet")
+    sm, d, table = _grunfeld_in_four_files(tmp_path)
     data = str(tmp_path / "*.parquet")
     hc3 = tallfit.fit(data, "invest", ["value", "capital"], by="era", robust="HC3", scheduler=client)
     cl = tallfit.fit(data, "invest", ["value", "capital"], by="era", cluster="firm", scheduler=client)
