@@ -394,7 +394,7 @@ def _staged_batches(files: list[str]):
 
 def score_part(part: tuple, model, intervals: bool, level: float, unseen: str, passthrough: list[str],
                read_cols: list[str], batch_rows: int, readers: int = 2, progress=None) -> PredictionReport:
-    """Score one part, ``part`` = (part source, staging file), into that Parquet file (one
+    """Score one part, ``part`` = (part source, staging file), into that Arrow IPC file (one
     worker's share of a prediction run; ``readers``: how many read parts at once)."""
     from tallfit.engine.parallel import read_part
 

@@ -4,6 +4,9 @@ Each batch is split by group key (one stable sort, grouped.group_rows); each gro
 through that group's own design (its categorical coding) into that group's second-pass sums
 (engine/pass_sums.py), so every group gets exactly the sandwich a pass over its rows alone would
 give. Rows of groups without a model (too few rows, aliased) and of a missing key are skipped.
+When the groups share one design (no categoricals) and no clusters are asked, every group's
+sandwich sums come from one sweep per block instead (kernels/group_sandwich.py: no call per group
+and block). On a dask cluster each part's group sums are made by a worker and merged in part order.
 Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics check one group at a time
 (GroupedFit.group: that group's model with its rows as the filter).
 """
@@ -130,8 +133,7 @@ def _batched(spec, plans: dict, cluster: list[str]) -> bool:
     from tallfit.diagnostics.kernels import SCORES_ALL
 
     first = next(iter(plans.values()))
-    return (not spec.categorical and not cluster and not first.frequency
-            and first.absorbed is None and all(p.robust is None or str(p.robust).upper() != "ALL" for p in plans.values())
+    return (not spec.categorical and not cluster and not first.frequency and first.absorbed is None
             and SandwichSums.create(1, first.robust).mode != SCORES_ALL)
 
 
