@@ -224,3 +224,28 @@ def test_per_group_robust_errors_on_the_cluster(client, tmp_path):
         np.testing.assert_allclose(cl.groups[key].robust["estimators"]["cluster:firm"]["std_error"], ref.bse,
                                    rtol=1e-9)
         assert hc3.groups[key].options["cluster"]["passes"] == 2
+
+
+def test_a_file_the_workers_cannot_open_is_named(client, tmp_path):
+    """A part whose file a worker cannot open: the error names the file and says the workers
+    must reach it (here the file is removed after the parts were planned)."""
+    import tallfit.engine.passes as passes
+
+    rng = np.random.default_rng(1)
+    tab = pa.table({"cpu_util": rng.uniform(size=600_000), "inlet_temp_c": rng.normal(size=600_000),
+                    "power_w": rng.normal(size=600_000)})
+    for k in range(2):
+        pq.write_table(tab, tmp_path / f"f{k}.parquet", row_group_size=100_000)
+    real = passes.source_parts
+
+    def then_remove(source, *a, **k):
+        parts = real(source, *a, **k)
+        (tmp_path / "f1.parquet").unlink()
+        return parts
+
+    passes.source_parts = then_remove
+    try:
+        with pytest.raises(DataSourceError, match=r"f1.parquet.*every worker must reach the files"):
+            tallfit.fit(str(tmp_path / "*.parquet"), "power_w", FEATS, scheduler=client)
+    finally:
+        passes.source_parts = real

@@ -68,7 +68,13 @@ class ClusterRun:
             raise ValueError(f"shape must be 'tree' or 'chain', not {shape!r}")
         if progress is not None and places is not None:  # the merges are queued already
             self._follow(done, places, progress)
-        result = out.result()  # a worker's exception (a bad value in a file, say) is raised here
+        try:
+            result = out.result()  # a worker's exception (a bad value in a file, say) is raised here
+        except DataSourceError as exc:
+            if "cannot open" not in str(exc):
+                raise
+            raise DataSourceError(f"{exc}, on a cluster worker: every worker must reach the files "
+                                  "(a shared file system, or object storage URIs)") from None
         self.parts += len(parts)
         self.passes += 1
         return result
