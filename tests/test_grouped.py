@@ -238,11 +238,11 @@ def test_group_factors_merge_across_level_orders():
         assert acc.level_counts["c"] == {lvl: int((c == lvl).sum()) for lvl in set(c)}
 
 
-@pytest.mark.parametrize("kind", ["HC0", "HC2", "HC3"])
+@pytest.mark.parametrize("kind", ["HC0", "HC2", "HC3", "cluster:day"])
 def test_batched_group_sandwich_equals_each_groups_own_pass(kind, monkeypatch):
-    """60 groups (one with a term aliased, so its model is narrower), analytic weights: the one-sweep
-    sums (kernels/group_sandwich.py) give the robust errors of the per-group second pass (a
-    property; that pass is checked against statsmodels above)."""
+    """60 groups (one with a term aliased, so its model is narrower), analytic weights, HC kinds or
+    clusters by day: the one-sweep sums (kernels/group_sandwich.py) give the robust errors of the
+    per-group second pass (a property; that pass is checked against statsmodels above)."""
     import tallfit.engine.grouped_pass as gp
 
     rng = np.random.default_rng(9)
@@ -251,10 +251,12 @@ def test_batched_group_sandwich_equals_each_groups_own_pass(kind, monkeypatch):
     x1, x2 = rng.normal(size=n), rng.normal(size=n)
     x2[g == 7] = 2.0 * x1[g == 7]  # aliased in group 7
     y = 1 + 2 * x1 - x2 + rng.normal(size=n) * (1 + np.abs(x1))
-    t = pa.table({"x1": x1, "x2": x2, "y": y, "g": g.astype(str), "w": rng.uniform(0.5, 2.0, n)})
-    fast = tallfit.fit(t, "y", ["x1", "x2"], by="g", weights="w", drop_aliased=True, robust=kind, batch_rows=700)
+    t = pa.table({"x1": x1, "x2": x2, "y": y, "g": g.astype(str), "w": rng.uniform(0.5, 2.0, n),
+                  "day": rng.integers(0, 30, n)})
+    opts = {"cluster": "day"} if kind.startswith("cluster") else {"robust": kind}
+    fast = tallfit.fit(t, "y", ["x1", "x2"], by="g", weights="w", drop_aliased=True, batch_rows=700, **opts)
     monkeypatch.setattr(gp, "_batched", lambda *a: False)
-    slow = tallfit.fit(t, "y", ["x1", "x2"], by="g", weights="w", drop_aliased=True, robust=kind, batch_rows=700)
+    slow = tallfit.fit(t, "y", ["x1", "x2"], by="g", weights="w", drop_aliased=True, batch_rows=700, **opts)
     assert len(fast.groups["7"].terms) == 2
     for key in slow.groups:
         np.testing.assert_allclose(fast.groups[key].robust["estimators"][kind]["covariance"],

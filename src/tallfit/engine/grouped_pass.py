@@ -4,8 +4,8 @@ Each batch is split by group key (one stable sort, grouped.group_rows); each gro
 through that group's own design (its categorical coding) into that group's second-pass sums
 (engine/pass_sums.py), so every group gets exactly the sandwich a pass over its rows alone would
 give. Rows of groups without a model (too few rows, aliased) and of a missing key are skipped.
-When the groups share one design (no categoricals) and no clusters are asked, every group's
-sandwich sums come from one sweep per block instead (kernels/group_sandwich.py: no call per group
+When the groups share one design (no categoricals) and one cluster key at most is asked, every
+group's sandwich sums come from one sweep per block instead (kernels/group_sandwich.py: no call per group
 and block). On a dask cluster each part's group sums are made by a worker and merged in part order.
 Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics check one group at a time
 (GroupedFit.group: that group's model with its rows as the filter).
@@ -20,7 +20,8 @@ import pyarrow.compute as pc
 
 from tallfit.design.design import Design, check_design_columns
 from tallfit.engine.cluster import current
-from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, chunk_label
+from tallfit.engine.cluster_codes import KeyCoder, PairCoder
+from tallfit.engine.local import DEFAULT_BATCH_ROWS, ProgressHook, chunk_label, span_label
 from tallfit.engine.parallel import source_parts
 from tallfit.engine.pass_sums import PartSums, PassPlan
 from tallfit.engine.prefetch import prefetched
@@ -28,7 +29,7 @@ from tallfit.errors import ColumnNotFoundError, DesignError
 from tallfit.grouped import group_rows
 from tallfit.inputs import as_source, source_label
 from tallfit.kernels.lapack_calls import single_blas_thread
-from tallfit.solve.robust import SandwichSums
+from tallfit.solve.robust import ClusterSums, SandwichSums
 
 
 def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] = (),
@@ -57,7 +58,7 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
         for key, part in sums.items():
             part.plan = plans[key]
     elif _batched(spec, plans, cluster):
-        sums = _batched_sums(source, models, plans, by, batch_rows, progress)
+        sums = _batched_sums(source, models, plans, by, batch_rows, progress, cluster)
     else:
         sums = _group_sums(source, models, plans, by, cluster, batch_rows, progress)
     for key, model in models.items():
@@ -129,17 +130,20 @@ def _merge_group_sums(a: dict, b: dict) -> dict:
 
 def _batched(spec, plans: dict, cluster: list[str]) -> bool:
     """Whether the groups' sums can come from one sweep per block (kernels/group_sandwich.py):
-    one shared design (no categoricals), one HC estimator, no clusters, no frequency weights."""
+    one shared design (no categoricals), one HC estimator, one cluster key at most, no frequency
+    weights."""
     from tallfit.diagnostics.kernels import SCORES_ALL
 
     first = next(iter(plans.values()))
-    return (not spec.categorical and not cluster and not first.frequency and first.absorbed is None
+    return (not spec.categorical and len(cluster) <= 1 and not first.frequency and first.absorbed is None
             and SandwichSums.create(1, first.robust).mode != SCORES_ALL)
 
 
-def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None) -> dict:
-    """Every group's sandwich sums from one sweep per block; returned as SecondPass values with
-    the sandwich only (what robust_for_model reads)."""
+def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None,
+                  cluster: list[str] = ()) -> dict:
+    """Every group's sandwich sums from one sweep per block (and, with a cluster key, each
+    (group, cluster) pair's score sums, coded by one PairCoder); returned as SecondPass values
+    with what robust_for_model reads."""
     import numpy as np
 
     from tallfit.engine.pass_sums import SecondPass
@@ -161,11 +165,14 @@ def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: 
     n_read, n_used, dropped = 0, 0, {}
     first = next(iter(models.values()))
     design = Design(first.spec, coding=first.coding)
-    read = list(dict.fromkeys(first.spec.input_columns + by))
+    read = list(dict.fromkeys(first.spec.input_columns + by + list(cluster)))
+    key_coder = KeyCoder(cluster[0]) if cluster else None
+    pairs, pair_sums = (PairCoder(cluster[0]), ClusterSums(cluster[0], P)) if cluster else (None, None)
 
     def blocks():
         for chunk in source.batches(read, batch_rows):
-            block = design.block(chunk.batch, chunk_label(source, chunk), extra_columns=by)
+            block = design.block(chunk.batch, chunk_label(source, chunk), extra_columns=list(dict.fromkeys(by + list(cluster))))
+            block.file_index, block.row_start = chunk.file_index, chunk.row_start
             if progress is not None:
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
@@ -182,13 +189,37 @@ def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: 
         slot_of = np.asarray([slot.get(k, -1) for k in encoded.dictionary.to_pylist()] + [-1], dtype=np.int64)
         codes = slot_of[encoded.indices.fill_null(len(encoded.dictionary)).to_numpy(zero_copy_only=False)
                         .astype(np.int64)]
-        n_used += int(np.count_nonzero(codes >= 0))
-        group_sandwich(block.A, codes, cols, widths, Rinv, beta, mode, gram, score_sum, rss, rows, max_h)
+        used = codes >= 0
+        n_used += int(np.count_nonzero(used))
+        scores = np.zeros((block.n_used if cluster else 0, P))
+        group_sandwich(block.A, codes, cols, widths, Rinv, beta, mode, gram, score_sum, rss, rows, max_h, scores)
+        if cluster:  # each row's scores to its (group, cluster) pair
+            where = span_label(source, block.file_index, block.row_start, block.n_read)
+            keys_here = key_coder.encode(block.extra[cluster[0]].filter(pa.array(used)), where)
+            ids = pairs.encode(codes[used], keys_here)
+            pair_sums.update(ids, scores[used], pairs.groups)
+    by_group = _pairs_by_group(pairs, pair_sums, G) if cluster else {}
     out = {}
     for k, plan in plans.items():
         g, p = slot[k], plan.p
         sums = SandwichSums(p, mode, int(rows[g]), gram[g, :p, :p].copy(), score_sum[g, :p].copy(), float(rss[g]),
                             float(max_h[g]))
+        clusters = []
+        if cluster:
+            S = np.asfortranarray(by_group.get(g, np.zeros((0, P)))[:, :p])
+            clusters = [ClusterSums(cluster[0], p, S=S, groups=S.shape[0])]
         out[k] = SecondPass(terms=list(plan.terms), features=list(plan.features), n_read=n_read, n_used=int(rows[g]),
-                            dropped_by_column=dict(dropped), sandwich=sums)
+                            dropped_by_column=dict(dropped), sandwich=sums, clusters=clusters)
     return out
+
+
+def _pairs_by_group(pairs, pair_sums, G: int) -> dict:
+    """Each group's rows of the pair sums (its clusters, in order of first appearance)."""
+    import numpy as np
+
+    n = pairs.groups
+    group_of = pairs.table.keys[:n] >> 32
+    order = np.argsort(group_of, kind="stable")
+    bounds = np.searchsorted(group_of[order], np.arange(G + 1))
+    S = pair_sums.S[:n]
+    return {g: S[order[bounds[g]:bounds[g + 1]]] for g in range(G) if bounds[g + 1] > bounds[g]}
