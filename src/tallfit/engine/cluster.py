@@ -49,8 +49,11 @@ class ClusterRun:
         if not parts:
             raise ValueError("nothing to merge")
         client = self.client
-        # the pass's shared objects (the spec, the model's plan) go to every worker once
-        scattered = {k: v if _plain(v) else client.scatter([v], broadcast=True)[0] for k, v in kwargs.items()}
+        # the pass's shared objects (the spec, the model's plan) go to every worker once, under keys
+        # of their own: with content-hashed keys the same spec scattered by the next pass shared its
+        # key with this one's, whose release could then drop the data under it ("lost dependencies")
+        scattered = {k: v if _plain(v) else client.scatter([v], broadcast=True, hash=False)[0]
+                     for k, v in kwargs.items()}
         level = [client.submit(fn, part, pure=False, **scattered) for part in parts]
         done = list(level)
         if shape == "tree":

@@ -52,12 +52,17 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
     by = list(grouped.by)
     run = current()
     parts = source_parts(source) if run is not None else None
-    if parts is not None:  # each part's group sums on a cluster worker, merged there part after part
+    batched = _batched(spec, plans, cluster)
+    if parts is not None and batched:  # each part's sums on a cluster worker, merged there in order
+        sums = run.map_merge(batched_part, [sub for sub, _ in parts], lambda a, b: a.absorb(b), "chain",
+                             progress=progress, places=parts, models=models, plans=plans, by=by, cluster=cluster,
+                             batch_rows=batch_rows).results(plans)
+    elif parts is not None:
         sums = run.map_merge(grouped_part, [sub for sub, _ in parts], _merge_group_sums, "chain", progress=progress,
                              places=parts, models=models, plans=plans, by=by, cluster=cluster, batch_rows=batch_rows)
         for key, part in sums.items():
             part.plan = plans[key]
-    elif _batched(spec, plans, cluster):
+    elif batched:
         sums = _batched_sums(source, models, plans, by, batch_rows, progress, cluster)
     else:
         sums = _group_sums(source, models, plans, by, cluster, batch_rows, progress)
@@ -139,78 +144,128 @@ def _batched(spec, plans: dict, cluster: list[str]) -> bool:
             and SandwichSums.create(1, first.robust).mode != SCORES_ALL)
 
 
-def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None,
-                  cluster: list[str] = ()) -> dict:
-    """Every group's sandwich sums from one sweep per block (and, with a cluster key, each
-    (group, cluster) pair's score sums, coded by one PairCoder); returned as SecondPass values
-    with what robust_for_model reads."""
-    import numpy as np
+class GroupSandwich:
+    """Every group's sandwich sums (and, with a cluster key, each (group, cluster) pair's score
+    sums, coded by one PairCoder), folded block by block by one sweep (kernels/group_sandwich.py);
+    mergeable, so parts on a cluster each make their own (create / fold / absorb / results)."""
 
-    from tallfit.engine.pass_sums import SecondPass
-    from tallfit.grouped import group_keys
-    from tallfit.kernels.group_sandwich import group_sandwich
+    def __init__(self, models: dict, plans: dict, by: list[str], cluster: Sequence[str]) -> None:
+        import numpy as np
 
-    keys = list(models)
-    slot = {k: i for i, k in enumerate(keys)}
-    G, P = len(keys), max(p.p for p in plans.values())
-    cols, widths = np.zeros((G, P), dtype=np.int64), np.zeros(G, dtype=np.int64)
-    Rinv, beta = np.zeros((G, P, P)), np.zeros((G, P))
-    for k, plan in plans.items():
-        g, p = slot[k], plan.p
-        cols[g, :p], widths[g] = plan.cols, p
-        Rinv[g, :p, :p], beta[g, :p] = plan.R11_inv, plan.beta
-    mode = SandwichSums.create(1, next(iter(plans.values())).robust).mode
-    gram, score_sum = np.zeros((G, P, P)), np.zeros((G, P))
-    rss, rows, max_h = np.zeros(G), np.zeros(G, dtype=np.int64), np.zeros(G)
-    n_read, n_used, dropped = 0, 0, {}
-    first = next(iter(models.values()))
-    design = Design(first.spec, coding=first.coding)
-    read = list(dict.fromkeys(first.spec.input_columns + by + list(cluster)))
-    key_coder = KeyCoder(cluster[0]) if cluster else None
-    pairs, pair_sums = (PairCoder(cluster[0]), ClusterSums(cluster[0], P)) if cluster else (None, None)
+        self.slot = {k: i for i, k in enumerate(models)}
+        G, P = len(self.slot), max(p.p for p in plans.values())
+        self.G, self.P = G, P
+        self.cols, self.widths = np.zeros((G, P), dtype=np.int64), np.zeros(G, dtype=np.int64)
+        self.Rinv, self.beta = np.zeros((G, P, P)), np.zeros((G, P))
+        for k, plan in plans.items():
+            g, p = self.slot[k], plan.p
+            self.cols[g, :p], self.widths[g] = plan.cols, p
+            self.Rinv[g, :p, :p], self.beta[g, :p] = plan.R11_inv, plan.beta
+        self.mode = SandwichSums.create(1, next(iter(plans.values())).robust).mode
+        self.gram, self.score_sum = np.zeros((G, P, P)), np.zeros((G, P))
+        self.rss, self.rows, self.max_h = np.zeros(G), np.zeros(G, dtype=np.int64), np.zeros(G)
+        self.n_read, self.dropped = 0, {}
+        self.by, self.cluster = list(by), list(cluster)
+        self.key_coder = KeyCoder(cluster[0]) if cluster else None
+        self.pairs = PairCoder(cluster[0]) if cluster else None
+        self.pair_sums = ClusterSums(cluster[0], P) if cluster else None
 
-    def blocks():
+    def blocks(self, source, model, batch_rows: int, progress=None):
+        """The design blocks of ``source`` (every group shares ``model``'s design)."""
+        design = Design(model.spec, coding=model.coding)
+        extra = list(dict.fromkeys(self.by + self.cluster))
+        read = list(dict.fromkeys(model.spec.input_columns + extra))
         for chunk in source.batches(read, batch_rows):
-            block = design.block(chunk.batch, chunk_label(source, chunk), extra_columns=list(dict.fromkeys(by + list(cluster))))
+            block = design.block(chunk.batch, chunk_label(source, chunk), extra_columns=extra)
             block.file_index, block.row_start = chunk.file_index, chunk.row_start
             if progress is not None:
                 progress(chunk.batch.num_rows, chunk.file_index)
             yield block
 
-    for block in prefetched(blocks(), depth=2):
-        n_read += block.n_read
+    def fold(self, block, source) -> None:
+        import numpy as np
+
+        from tallfit.grouped import group_keys
+        from tallfit.kernels.group_sandwich import group_sandwich
+
+        self.n_read += block.n_read
         for name, count in block.dropped_by_column.items():
-            dropped[name] = dropped.get(name, 0) + count
+            self.dropped[name] = self.dropped.get(name, 0) + count
         if not block.n_used:
-            continue
-        encoded = pc.dictionary_encode(group_keys([block.extra[c] for c in by]))
+            return
+        encoded = pc.dictionary_encode(group_keys([block.extra[c] for c in self.by]))
         if isinstance(encoded, pa.ChunkedArray):
             encoded = encoded.combine_chunks()
-        slot_of = np.asarray([slot.get(k, -1) for k in encoded.dictionary.to_pylist()] + [-1], dtype=np.int64)
+        slot_of = np.asarray([self.slot.get(k, -1) for k in encoded.dictionary.to_pylist()] + [-1], dtype=np.int64)
         codes = slot_of[encoded.indices.fill_null(len(encoded.dictionary)).to_numpy(zero_copy_only=False)
                         .astype(np.int64)]
         used = codes >= 0
-        n_used += int(np.count_nonzero(used))
-        scores = np.zeros((block.n_used if cluster else 0, P))
-        group_sandwich(block.A, codes, cols, widths, Rinv, beta, mode, gram, score_sum, rss, rows, max_h, scores)
-        if cluster:  # each row's scores to its (group, cluster) pair
+        scores = np.zeros((block.n_used if self.cluster else 0, self.P))
+        group_sandwich(block.A, codes, self.cols, self.widths, self.Rinv, self.beta, self.mode, self.gram,
+                       self.score_sum, self.rss, self.rows, self.max_h, scores)
+        if self.cluster:  # each row's scores to its (group, cluster) pair
             where = span_label(source, block.file_index, block.row_start, block.n_read)
-            keys_here = key_coder.encode(block.extra[cluster[0]].filter(pa.array(used)), where)
-            ids = pairs.encode(codes[used], keys_here)
-            pair_sums.update(ids, scores[used], pairs.groups)
-    by_group = _pairs_by_group(pairs, pair_sums, G) if cluster else {}
-    out = {}
-    for k, plan in plans.items():
-        g, p = slot[k], plan.p
-        sums = SandwichSums(p, mode, int(rows[g]), gram[g, :p, :p].copy(), score_sum[g, :p].copy(), float(rss[g]),
-                            float(max_h[g]))
-        clusters = []
-        if cluster:
-            S = np.asfortranarray(by_group.get(g, np.zeros((0, P)))[:, :p])
-            clusters = [ClusterSums(cluster[0], p, S=S, groups=S.shape[0])]
-        out[k] = SecondPass(terms=list(plan.terms), features=list(plan.features), n_read=n_read, n_used=int(rows[g]),
-                            dropped_by_column=dict(dropped), sandwich=sums, clusters=clusters)
-    return out
+            keys_here = self.key_coder.encode(block.extra[self.cluster[0]].filter(pa.array(used)), where)
+            ids = self.pairs.encode(codes[used], keys_here)
+            self.pair_sums.update(ids, scores[used], self.pairs.groups)
+
+    def absorb(self, other: "GroupSandwich") -> "GroupSandwich":
+        """Add the sums of the part that follows this one in the data."""
+        import numpy as np
+
+        for name in ("gram", "score_sum", "rss", "rows"):
+            getattr(self, name)[...] += getattr(other, name)
+        np.maximum(self.max_h, other.max_h, out=self.max_h)
+        self.n_read += other.n_read
+        for name, count in other.dropped.items():
+            self.dropped[name] = self.dropped.get(name, 0) + count
+        if self.cluster:
+            keys = self.key_coder.absorb(other.key_coder)
+            lut = self.pairs.absorb(other.pairs, np.arange(self.G, dtype=np.int64), keys)
+            self.pair_sums.absorb(other.pair_sums, lut, self.pairs.groups)
+        return self
+
+    def results(self, plans: dict) -> dict:
+        """SecondPass values per group with what robust_for_model reads."""
+        import numpy as np
+
+        from tallfit.engine.pass_sums import SecondPass
+
+        by_group = _pairs_by_group(self.pairs, self.pair_sums, self.G) if self.cluster else {}
+        out = {}
+        for k, plan in plans.items():
+            g, p = self.slot[k], plan.p
+            sums = SandwichSums(p, self.mode, int(self.rows[g]), self.gram[g, :p, :p].copy(),
+                                self.score_sum[g, :p].copy(), float(self.rss[g]), float(self.max_h[g]))
+            clusters = []
+            if self.cluster:
+                S = np.asfortranarray(by_group.get(g, np.zeros((0, self.P)))[:, :p])
+                clusters = [ClusterSums(self.cluster[0], p, S=S, groups=S.shape[0])]
+            out[k] = SecondPass(terms=list(plan.terms), features=list(plan.features), n_read=self.n_read,
+                                n_used=int(self.rows[g]), dropped_by_column=dict(self.dropped), sandwich=sums,
+                                clusters=clusters)
+        return out
+
+
+def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None,
+                  cluster: Sequence[str] = ()) -> dict:
+    """Every group's sums from one sweep per block (GroupSandwich), as SecondPass values."""
+    sums = GroupSandwich(models, plans, by, cluster)
+    for block in prefetched(sums.blocks(source, next(iter(models.values())), batch_rows, progress), depth=2):
+        sums.fold(block, source)
+    return sums.results(plans)
+
+
+def batched_part(sub, models: dict, plans: dict, by: list[str], cluster: list[str], batch_rows: int) -> GroupSandwich:
+    """One part's GroupSandwich, read by a cluster worker."""
+    from tallfit.engine.cluster import PART_READERS
+    from tallfit.engine.parallel import read_part
+
+    read_part(sub, PART_READERS)
+    sums = GroupSandwich(models, plans, by, cluster)
+    for block in sums.blocks(sub, next(iter(models.values())), batch_rows):
+        sums.fold(block, sub)
+    return sums
 
 
 def _pairs_by_group(pairs, pair_sums, G: int) -> dict:
