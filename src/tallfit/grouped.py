@@ -36,16 +36,25 @@ def group_keys(columns: list[pa.Array]) -> pa.Array:
 def group_rows(columns: list[pa.Array]):
     """(key, row indices in row order) of each distinct key of the grouping columns, nulls last as
     the key None: one dictionary encoding and one stable sort, not a filter per group."""
-    keys = pc.dictionary_encode(group_keys(columns))
-    if isinstance(keys, pa.ChunkedArray):
-        keys = keys.combine_chunks()
-    groups = keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)
+    keys: list = []
+    codes = group_codes(columns, lambda key: keys.append(key) or len(keys) - 1)
+    groups = np.where(codes < 0, len(keys), codes)
     order = np.argsort(groups, kind="stable")
-    ends = np.cumsum(np.bincount(groups, minlength=len(keys.dictionary) + 1))
-    for g, key in enumerate(keys.dictionary.to_pylist() + [None]):
+    ends = np.cumsum(np.bincount(groups, minlength=len(keys) + 1))
+    for g, key in enumerate(keys + [None]):
         idx = order[(ends[g - 1] if g else 0): ends[g]]
         if idx.size:
             yield key, idx
+
+
+def group_codes(columns: list[pa.Array], slot_of) -> np.ndarray:
+    """Each row's group slot from the grouping columns: ``slot_of(key)`` once per distinct key of
+    the batch (−1: no group; a missing key is −1 too)."""
+    keys = pc.dictionary_encode(group_keys(columns))
+    if isinstance(keys, pa.ChunkedArray):
+        keys = keys.combine_chunks()
+    slots = np.asarray([slot_of(k) for k in keys.dictionary.to_pylist()] + [-1], dtype=np.int64)
+    return slots[keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)]
 
 
 def group_filter(by: list[str], key: str, schema: pa.Schema) -> str:
@@ -161,6 +170,8 @@ class GroupAccumulators:
         self.n_used = 0
         self.dropped: dict[str, int] = {}
 
+    _PER_GROUP = ("R", "col_min", "col_max", "nonzero", "rows", "wsum", "wlog")
+
     def _alloc(self, cap: int, k: int) -> None:
         self.R = np.zeros((cap, k, k))
         self.col_min = np.full((cap, k), np.inf)
@@ -183,10 +194,10 @@ class GroupAccumulators:
         cap = self.R.shape[0]
         if groups <= cap:
             return
-        old = (self.R, self.col_min, self.col_max, self.nonzero, self.rows, self.wsum, self.wlog)
+        old = [getattr(self, name) for name in self._PER_GROUP]
         self._alloc(max(groups, 2 * cap), len(self.names))
-        for new, was in zip((self.R, self.col_min, self.col_max, self.nonzero, self.rows, self.wsum, self.wlog), old):
-            new[:cap] = was
+        for name, was in zip(self._PER_GROUP, old):
+            getattr(self, name)[:cap] = was
 
     def _expand(self, names: list[str]) -> None:
         """Every group's factor in the columns ``names`` (a superset: new columns are zero, as in
@@ -212,19 +223,15 @@ class GroupAccumulators:
         names = block.names or self.names
         if names != self.names:
             self._expand(names)
-        keys = pc.dictionary_encode(group_keys([block.extra[c] for c in self.by]))
-        if isinstance(keys, pa.ChunkedArray):
-            keys = keys.combine_chunks()
-        slot_of = np.empty(len(keys.dictionary) + 1, dtype=np.int64)
-        for j, key in enumerate(keys.dictionary.to_pylist()):
+        def slot_of(key: str) -> int:  # a new group gets the next slot, within the budget
             slot = self.slots.get(key)
             if slot is None:
                 slot = self.slots[key] = len(self.slots)
                 self._check_budget(len(names))
-            slot_of[j] = slot
-        slot_of[-1] = -1  # a missing group key: no group
+            return slot
+
+        codes = group_codes([block.extra[c] for c in self.by], slot_of)
         self._grow(len(self.slots))
-        codes = slot_of[keys.indices.fill_null(len(keys.dictionary)).to_numpy(zero_copy_only=False).astype(np.int64)]
         self.null_rows += int(np.count_nonzero(codes < 0))
         seen = codes >= 0
         counts = np.bincount(codes[seen], minlength=self.R.shape[0])

@@ -99,10 +99,10 @@ class BinnedSums:
             return
         cols = np.arange(A.shape[1], dtype=np.int64) if cols is None else np.asarray(cols, dtype=np.int64)
         if w is not None:
-            counted = A[w > 0]
+            counted = A[np.ix_(w > 0, cols)]  # only the binned columns of the rows that count
             if counted.shape[0]:
-                np.minimum(self.lo_seen, counted[:, cols].min(axis=0), out=self.lo_seen)
-                np.maximum(self.hi_seen, counted[:, cols].max(axis=0), out=self.hi_seen)
+                np.minimum(self.lo_seen, counted.min(axis=0), out=self.lo_seen)
+                np.maximum(self.hi_seen, counted.max(axis=0), out=self.hi_seen)
             grid_bin_sums_weighted(A, cols, e, w, self.grid.lo, self.grid.scale, self.grid.cells, self.sums,
                                    np.empty(m, dtype=np.int32))
             return

@@ -16,7 +16,6 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from tallfit.design.design import Design, check_design_columns
 from tallfit.engine.cluster import current
@@ -185,7 +184,7 @@ class GroupSandwich:
     def fold(self, block, source) -> None:
         import numpy as np
 
-        from tallfit.grouped import group_keys
+        from tallfit.grouped import group_codes
         from tallfit.kernels.group_sandwich import group_sandwich
 
         self.n_read += block.n_read
@@ -193,12 +192,7 @@ class GroupSandwich:
             self.dropped[name] = self.dropped.get(name, 0) + count
         if not block.n_used:
             return
-        encoded = pc.dictionary_encode(group_keys([block.extra[c] for c in self.by]))
-        if isinstance(encoded, pa.ChunkedArray):
-            encoded = encoded.combine_chunks()
-        slot_of = np.asarray([self.slot.get(k, -1) for k in encoded.dictionary.to_pylist()] + [-1], dtype=np.int64)
-        codes = slot_of[encoded.indices.fill_null(len(encoded.dictionary)).to_numpy(zero_copy_only=False)
-                        .astype(np.int64)]
+        codes = group_codes([block.extra[c] for c in self.by], lambda key: self.slot.get(key, -1))
         used = codes >= 0
         scores = np.zeros((block.n_used if self.cluster else 0, self.P))
         group_sandwich(block.A, codes, self.cols, self.widths, self.Rinv, self.beta, self.mode, self.gram,
@@ -247,13 +241,20 @@ class GroupSandwich:
         return out
 
 
+def _sandwich_sums(source, models: dict, plans: dict, by: list[str], cluster: Sequence[str], batch_rows: int,
+                   progress=None, prefetch: int = 2) -> GroupSandwich:
+    """Every group's sums over ``source`` from one sweep per block (decoded ``prefetch`` batches ahead)."""
+    sums = GroupSandwich(models, plans, by, cluster)
+    blocks = sums.blocks(source, next(iter(models.values())), batch_rows, progress)
+    for block in (prefetched(blocks, depth=prefetch) if prefetch else blocks):
+        sums.fold(block, source)
+    return sums
+
+
 def _batched_sums(source, models: dict, plans: dict, by: list[str], batch_rows: int, progress=None,
                   cluster: Sequence[str] = ()) -> dict:
     """Every group's sums from one sweep per block (GroupSandwich), as SecondPass values."""
-    sums = GroupSandwich(models, plans, by, cluster)
-    for block in prefetched(sums.blocks(source, next(iter(models.values())), batch_rows, progress), depth=2):
-        sums.fold(block, source)
-    return sums.results(plans)
+    return _sandwich_sums(source, models, plans, by, cluster, batch_rows, progress).results(plans)
 
 
 def batched_part(sub, models: dict, plans: dict, by: list[str], cluster: list[str], batch_rows: int) -> GroupSandwich:
@@ -262,10 +263,7 @@ def batched_part(sub, models: dict, plans: dict, by: list[str], cluster: list[st
     from tallfit.engine.parallel import read_part
 
     read_part(sub, PART_READERS)
-    sums = GroupSandwich(models, plans, by, cluster)
-    for block in sums.blocks(sub, next(iter(models.values())), batch_rows):
-        sums.fold(block, sub)
-    return sums
+    return _sandwich_sums(sub, models, plans, by, cluster, batch_rows, prefetch=0)
 
 
 def _pairs_by_group(pairs, pair_sums, G: int) -> dict:
