@@ -45,3 +45,22 @@ def test_shift_keeps_the_digits_a_large_mean_would_cancel():
     s = A[:100].mean(axis=0)
     D = A - s
     np.testing.assert_allclose(gram(A, s), D.T @ D, rtol=1e-12)
+
+
+@pytest.mark.parametrize("q", [1, 3, 4, 6, 21, 22])
+def test_both_block_shapes_give_the_same_upper_triangle(q):
+    """The 2 × 4 and the 4 × 4 column blocks (kernels.products picks one from the host's vector
+    registers) sum each entry over the same rows: both equal numpy's product, whichever this
+    machine uses."""
+    from tallfit.kernels.products import upper_gram_rows_narrow, upper_gram_rows_wide
+
+    rng = np.random.default_rng(40 + q)
+    A = np.asfortranarray(rng.normal(size=(2 * TILE_ROWS + 17, q)))
+    s = rng.normal(size=q)
+    D = A[5:] - s
+    ref = np.triu(D.T @ D)
+    for kernel in (upper_gram_rows_narrow, upper_gram_rows_wide):
+        U = np.zeros((q, q))
+        kernel(A, 5, A.shape[0], s, U)
+        np.testing.assert_allclose(U, ref, rtol=1e-12, atol=1e-12 * np.abs(ref).max())
+        assert not np.tril(U, -1).any()  # only the upper triangle is summed

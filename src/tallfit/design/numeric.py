@@ -9,6 +9,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tallfit.design.spec import ModelSpec
+from tallfit.kernels.ranged_copy import copy_with_range
 
 
 @dataclass
@@ -62,6 +63,12 @@ def column_as_float(col: pa.Array | pa.ChunkedArray) -> np.ndarray:
     return col.to_numpy(zero_copy_only=False)
 
 
+def _matrix_for(m: int, k: int, out: np.ndarray | None) -> np.ndarray:
+    if out is not None and out.shape == (m, k) and out.strides[0] == 8 and out.dtype == np.float64:
+        return out
+    return np.empty((m, k), dtype=np.float64, order="F")
+
+
 def fill_matrix(
     batch: pa.RecordBatch, columns: list[str], leading_ones: bool, out: np.ndarray | None = None
 ) -> np.ndarray:
@@ -72,12 +79,7 @@ def fill_matrix(
     row at k = 22, measured). Float64
     columns without nulls are read straight from Arrow's buffer, so each value is copied once.
     """
-    m = batch.num_rows
-    k = len(columns) + (1 if leading_ones else 0)
-    if out is not None and out.shape == (m, k) and out.strides[0] == 8 and out.dtype == np.float64:
-        M = out
-    else:
-        M = np.empty((m, k), dtype=np.float64, order="F")
+    M = _matrix_for(batch.num_rows, len(columns) + (1 if leading_ones else 0), out)
     j = 0
     if leading_ones:
         M[:, 0] = 1.0
@@ -86,6 +88,27 @@ def fill_matrix(
         M[:, j] = column_as_float(batch.column(name))
         j += 1
     return M
+
+
+def fill_ranged(
+    batch: pa.RecordBatch, columns: list[str], leading_ones: bool, out: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+    """``fill_matrix`` with each column's min and max measured while it is copied
+    (kernels.ranged_copy), and whether every value is finite; the ranges hold only when it is."""
+    M = _matrix_for(batch.num_rows, len(columns) + (1 if leading_ones else 0), out)
+    lo, hi = np.empty(M.shape[1]), np.empty(M.shape[1])
+    finite = True
+    j = 0
+    if leading_ones:
+        M[:, 0] = 1.0
+        lo[0] = hi[0] = 1.0
+        j = 1
+    for name in columns:
+        v = column_as_float(batch.column(name))
+        lo[j], hi[j], ok = copy_with_range(v, v.view(np.int64), M[:, j])
+        finite = finite and ok
+        j += 1
+    return M, lo, hi, finite
 
 
 def finite_rows(M: np.ndarray, names: list[str], first: int) -> tuple[np.ndarray | None, dict[str, int]]:
@@ -108,22 +131,21 @@ def design_block(batch: pa.RecordBatch, spec: ModelSpec, out: np.ndarray | None 
     """Build [X | y] for one batch; rows with a missing or non-finite value are dropped and counted.
 
     ``out`` is an optional reusable buffer (see ``fill_matrix``); the block's matrix is then that
-    buffer, unless rows were dropped (a compacted copy). The block carries each column's range:
-    one min and one max per column, which also decide whether any value is missing (NaN and
-    infinities reach the min or max), so the finiteness check costs nothing extra.
+    buffer, unless rows were dropped (a compacted copy). The block carries each column's range,
+    measured while the columns are copied, with whether any value is missing (NaN or infinite),
+    so the finiteness check costs nothing extra.
     """
     cols = spec.numeric_columns  # a plain design: the features and the target (an absorbed key rides along)
-    A = fill_matrix(batch, cols, spec.has_intercept_column, out=out)
+    A, lo, hi, finite = fill_ranged(batch, cols, spec.has_intercept_column, out=out)
     first = 1 if spec.has_intercept_column else 0
     if A.shape[0] == 0:
         return DesignBlock(A=A, n_read=0)
-    lo, hi = A.min(axis=0), A.max(axis=0)
     keep, dropped = None, {}
-    if not (np.isfinite(lo[first:]).all() and np.isfinite(hi[first:]).all()):
+    if not finite:
         keep, dropped = finite_rows(A, cols, first)
         if keep is not None:
             A = np.asfortranarray(A[keep])
-            lo, hi = (A.min(axis=0), A.max(axis=0)) if A.shape[0] else (None, None)
+        lo, hi = (A.min(axis=0), A.max(axis=0)) if A.shape[0] else (None, None)  # the fast ranges need finite values
     block = DesignBlock(A=A, n_read=batch.num_rows, dropped_by_column=dropped, keep=keep)
     if A.shape[0]:
         block.col_min, block.col_max = lo, hi

@@ -124,19 +124,29 @@ def _block_wide(A, r0, r1, s, j, k, P):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True)
-def upper_gram_rows(A, r0, r1, s, U):  # pragma: no cover - compiled
-    """The upper triangle of U (q × q) += Σ (aᵢ − s)(aᵢ − s)ᵀ over rows r0..r1-1 of A."""
+def upper_gram_rows_narrow(A, r0, r1, s, U):  # pragma: no cover - compiled
+    """The upper triangle of U (q × q) += Σ (aᵢ − s)(aᵢ − s)ᵀ over rows r0..r1-1 of A, in 2-row
+    blocks against the 4-column blocks on or right of them (machines with 16 vector registers)."""
     q = A.shape[1]
     for a in range(r0, r1, TILE_ROWS):
         b = min(a + TILE_ROWS, r1)
-        if WIDE_BLOCKS:  # 4-row blocks against the 4-column blocks on or right of them
-            for j in range(0, q, 4):
-                for k in range(j, q, 4):
-                    _block_wide(A, a, b, s, j, k, U)
-        else:  # 2-row blocks against the 4-column blocks on or right of them
-            for j in range(0, q, 2):
-                for k in range(j - j % 4, q, 4):
-                    _block(A, a, b, s, j, k, U)
+        for j in range(0, q, 2):
+            for k in range(j - j % 4, q, 4):
+                _block(A, a, b, s, j, k, U)
+
+
+@numba.njit(cache=True, nogil=True)
+def upper_gram_rows_wide(A, r0, r1, s, U):  # pragma: no cover - compiled
+    """``upper_gram_rows_narrow`` in 4-row blocks (machines with 32 vector registers)."""
+    q = A.shape[1]
+    for a in range(r0, r1, TILE_ROWS):
+        b = min(a + TILE_ROWS, r1)
+        for j in range(0, q, 4):
+            for k in range(j, q, 4):
+                _block_wide(A, a, b, s, j, k, U)
+
+
+upper_gram_rows = upper_gram_rows_wide if WIDE_BLOCKS else upper_gram_rows_narrow
 
 
 @numba.njit(cache=True, nogil=True)
