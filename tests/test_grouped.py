@@ -194,8 +194,13 @@ def test_checking_one_group_equals_statsmodels_on_its_rows(tmp_path):
     g2 = tallfit.fit(path, "invest", ["value"], by=["era", "year"], batch_rows=37)
     two = diagnose(g2, path, group="early | 1935", robust="HC1")
     assert two["diagnostics"]["n_used"] == int((d.year == 1935).sum()) == two["model"].inference.n_used
-    with pytest.raises(DesignError, match="name the group to check with --group"):
-        diagnose(g, path)
+    every = diagnose(g, path, keep=["year"])  # every group from one pass: the same numbers for "late"
+    late = every["groups"]["late"]
+    np.testing.assert_allclose(late["model"].robust["estimators"]["HC3"]["std_error"],
+                               ref.get_robustcov_results(cov_type="HC3").bse, rtol=1e-9)
+    np.testing.assert_allclose(late["diagnostics"]["breusch_pagan"]["statistic"], lm, rtol=1e-8)
+    assert late["diagnostics"]["top_residuals"] == out["diagnostics"]["top_residuals"]
+    assert set(every["groups"]) == set(g.groups)
     with pytest.raises(DesignError, match="no model for group 'middle'"):
         diagnose(g, path, group="middle")
     with pytest.raises(DesignError, match="not one per group"):
@@ -261,3 +266,34 @@ def test_batched_group_sandwich_equals_each_groups_own_pass(kind, monkeypatch):
     for key in slow.groups:
         np.testing.assert_allclose(fast.groups[key].robust["estimators"][kind]["covariance"],
                                    slow.groups[key].robust["estimators"][kind]["covariance"], rtol=1e-10, atol=1e-14)
+
+
+def test_every_group_checked_at_once_with_own_codings_equals_each_alone(tmp_path, monkeypatch):
+    """Per-group models with a categorical (each group its own coding): one pass over every group
+    gives each group the robust errors, Breusch–Pagan sums and largest rows (named by file row) of
+    checking it alone; beyond REPORT_GROUPS groups the check asks for --group."""
+    import tallfit.api as api
+    from tallfit.api import diagnose
+
+    rng = np.random.default_rng(12)
+    n = 9000
+    g = rng.choice(["a", "b", "c"], n)
+    c = np.where(g == "c", rng.choice(["x", "y"], n), rng.choice(["x", "y", "z"], n))
+    x = rng.normal(size=n)
+    y = 1 + 2 * x + (c == "y") * 3 + rng.normal(size=n) * (1 + np.abs(x))
+    path = tmp_path / "t.parquet"
+    pq.write_table(pa.table({"g": g, "c": c, "x": x, "y": y, "id": np.arange(n)}), path, row_group_size=2500)
+    m = tallfit.fit(path, "y", ["x"], categorical=["c"], by="g", batch_rows=1000)
+    every = diagnose(m, path, keep=["id"], batch_rows=700)
+    for key, found in every["groups"].items():
+        alone = diagnose(m, path, group=key, keep=["id"], batch_rows=700)
+        a, b = found["diagnostics"], alone["diagnostics"]
+        assert a["n_used"] == b["n_used"] == int((g == key).sum())
+        np.testing.assert_allclose(found["model"].robust["estimators"]["HC3"]["std_error"],
+                                   alone["model"].robust["estimators"]["HC3"]["std_error"], rtol=1e-12)
+        assert a["breusch_pagan"]["statistic"] == pytest.approx(b["breusch_pagan"]["statistic"], rel=1e-12)
+        assert a["top_residuals"] == b["top_residuals"]
+        assert all(g[r["row"]] == key and r["id"] == r["row"] for r in a["top_residuals"])
+    monkeypatch.setattr(api, "REPORT_GROUPS", 2)
+    with pytest.raises(DesignError, match="name the group to check with --group"):
+        diagnose(m, path)

@@ -164,7 +164,8 @@ def test_report_of_an_absorbed_model_from_its_file(fleet, capsys):
 def test_report_of_one_group_of_a_per_group_model(fleet, tmp_path, capsys):
     """fit --by (hosts split in two halves by an invented column), then report --group: the report
     checks that group's rows only, says which rows it kept, and still finds the bend in
-    inlet_temp_c; without --group, or with a group the file lacks, exit 2 and nothing written."""
+    inlet_temp_c; with a group the file lacks, exit 2 and nothing written. (Without --group every
+    group is checked: test_report_of_every_group_in_one_pass.)"""
     folder, data, _ = fleet
     t = pq.read_table(data)
     half = np.where(np.arange(t.num_rows) % 2 == 0, "even", "odd")
@@ -174,8 +175,6 @@ def test_report_of_one_group_of_a_per_group_model(fleet, tmp_path, capsys):
     assert main(["fit", str(path), "--target", "power_w", "--features", "cpu_util,inlet_temp_c", "--by", "half",
                  "--out", str(model), "--no-progress"]) == 0
     out = tmp_path / "odd.html"
-    assert main(["report", str(model), str(path), "--out", str(out), "--no-progress"]) == 2
-    assert "--group" in capsys.readouterr().err and not out.exists()
     assert main(["report", str(model), str(path), "--out", str(out), "--group", "none", "--no-progress"]) == 2
     assert "no model for group 'none'" in capsys.readouterr().err and not out.exists()
     assert main(["report", str(model), str(path), "--out", str(out), "--group", "odd", "--no-progress"]) == 0
@@ -183,3 +182,55 @@ def test_report_of_one_group_of_a_per_group_model(fleet, tmp_path, capsys):
     html = out.read_text(encoding="utf-8")
     assert "Rows kept: <code>&quot;half&quot; = &#x27;odd&#x27;</code>" in html
     assert "3,000 rows used" in html
+
+
+def test_report_of_every_group_in_one_pass(fleet, tmp_path, capsys):
+    """fit --by, then report without --group: one pass checks every group. Each group's numbers
+    equal those of checking that group alone (diagnose(group=...), itself checked against
+    statsmodels in test_grouped.py); the page opens with an overview whose Breusch–Pagan p-values
+    are Holm-adjusted across the groups, parses, and every embedded image decodes."""
+    from tallfit.api import diagnose
+    from tallfit.diagnostics.multiple_tests import holm
+    from tallfit.modelfile import load_model
+
+    folder, data, _ = fleet
+    t = pq.read_table(data)
+    third = np.array(["a", "b", "c"])[np.arange(t.num_rows) % 3]
+    path = tmp_path / "thirds.parquet"
+    pq.write_table(t.append_column("third", pa.array(third)), path, row_group_size=1000)
+    model = tmp_path / "g.json"
+    assert main(["fit", str(path), "--target", "power_w", "--features", "cpu_util,inlet_temp_c", "--by", "third",
+                 "--out", str(model), "--no-progress"]) == 0
+    out = tmp_path / "all.html"
+    assert main(["report", str(model), str(path), "--out", str(out), "--keep", "host_id", "--cluster", "host_id",
+                 "--batch-rows", "700", "--no-progress"]) == 0
+    printed = capsys.readouterr().out
+    for key in "abc":
+        assert f"{key}: inlet_temp_c: the straight line misses a bend" in printed
+    text = out.read_text(encoding="utf-8")
+    parser = _Collect()
+    parser.feed(text)
+    assert len(parser.imgs) == 3 * 6  # each group's six figures
+    for img in parser.imgs:
+        with PIL.open(io.BytesIO(base64.b64decode(img["src"].split(",", 1)[1]))) as im:
+            im.verify()
+    assert not [u for u in parser.links if u.startswith(("http:", "https:", "//"))]
+    assert "Groups at a glance" in parser.headings and parser.headings.count("Estimates") == 3
+    assert len(list((tmp_path / "all_files").iterdir())) == 3 * 12
+    whole = diagnose(load_model(model), path, keep=["host_id"], cluster="host_id", batch_rows=700)
+    bp = []
+    for key, found in whole["groups"].items():
+        alone = diagnose(load_model(model), path, group=key, keep=["host_id"], cluster="host_id", batch_rows=700)
+        a, b = found["diagnostics"], alone["diagnostics"]
+        assert a["n_used"] == b["n_used"] == found["model"].inference.n_used == 2000
+        np.testing.assert_allclose(found["model"].robust["estimators"]["cluster:host_id"]["std_error"],
+                                   alone["model"].robust["estimators"]["cluster:host_id"]["std_error"], rtol=1e-12)
+        assert a["breusch_pagan"]["statistic"] == pytest.approx(b["breusch_pagan"]["statistic"], rel=1e-12)
+        assert a["top_residuals"] == b["top_residuals"]  # named by their rows in the file, with host_id
+        assert [f["bins"] for f in a["features"]] == [f["bins"] for f in b["features"]]
+        bp.append(b["breusch_pagan"]["p_value"])
+    from tallfit.render.numbers import pval
+
+    overview = text.split("Groups at a glance", 1)[1].split("<section", 1)[0]
+    for adjusted in holm(bp):
+        assert f"<td>{pval(adjusted)}</td>" in overview

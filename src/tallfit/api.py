@@ -258,7 +258,10 @@ def diagnose(
     "diagnostics": dict}``; ``tallfit.render.report.write_report`` turns it into a report.
     For per-group models (``by``), ``group`` names the group to check (its key as the summary
     shows it, e.g. ``"north-1"``, or ``"north-1 | compute-a"`` for two grouping columns); the pass
-    then reads only that group's rows. ``scheduler``: run the pass on a dask cluster (see ``fit``).
+    then reads only that group's rows. Without ``group`` every group is checked in one pass (up
+    to ``REPORT_GROUPS`` groups): the result is then ``{"model": GroupedFit, "groups": {key:
+    {"model", "diagnostics"}}}``. ``scheduler``: run the pass on a dask cluster (see ``fit``; the
+    every-group pass runs here).
     """
     if scheduler is not None:
         return _on_cluster(diagnose, dict(locals()))
@@ -275,11 +278,8 @@ def diagnose(
     source = as_source(data, format=format, delimiter=delimiter)
     if isinstance(model, GroupedFit):
         if group is None:
-            shown = ", ".join(repr(k) for k in list(model.groups)[:5]) + (", …" if len(model.groups) > 5 else "")
-            raise DesignError(
-                f"this model has one model per {', '.join(model.by)} ({len(model.groups)} groups): "
-                f"name the group to check with --group (group=), one of {shown}"
-            )
+            return _diagnose_groups(model, source, robust=robust, cluster=cluster_list(cluster), keep=list(keep),
+                                    bins=bins, batch_rows=batch_rows, progress=progress)
         model = model.group(group, source.schema)
     elif group is not None:
         raise DesignError(f"--group {group!r}: this model is one model, not one per group")
@@ -289,6 +289,35 @@ def diagnose(
         model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
     diag = build_diagnostics(model, sp, bins=bins, robust=model.robust)
     return {"model": model, "diagnostics": diag, "source": source.describe()}
+
+
+#: Every group is checked in one pass up to this many groups (each keeps ≈ 0.7 MB of histograms);
+#: beyond it, one group at a time (--group).
+REPORT_GROUPS = 50
+
+
+def _diagnose_groups(grouped, source, *, robust, cluster, keep, bins, batch_rows, progress) -> dict[str, Any]:
+    """``diagnose`` of every group of a per-group model from one pass (engine.grouped_pass)."""
+    from tallfit.diagnostics.assemble import build_diagnostics, same_data
+    from tallfit.engine.grouped_pass import grouped_second_pass
+    from tallfit.errors import DesignError
+    from tallfit.solve.robust import robust_for_model
+
+    if len(grouped.groups) > REPORT_GROUPS:
+        shown = ", ".join(repr(k) for k in list(grouped.groups)[:5]) + ", …"
+        raise DesignError(
+            f"this model has one model per {', '.join(grouped.by)} ({len(grouped.groups)} groups, more than the "
+            f"{REPORT_GROUPS} one report checks at once): name the group to check with --group (group=), one of {shown}"
+        )
+    passes = grouped_second_pass(grouped, source, cluster=cluster, keep=keep, robust=robust, batch_rows=batch_rows,
+                                 progress=progress)
+    checked = {}
+    for key, sp in passes.items():
+        model = grouped.groups[key]
+        if same_data(model, sp):
+            model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
+        checked[key] = {"model": model, "diagnostics": build_diagnostics(model, sp, bins=bins, robust=model.robust)}
+    return {"model": grouped, "groups": checked, "source": source.describe()}
 
 
 def predict(model: FitResult | str | os.PathLike, data: Any, **kwargs: Any):

@@ -25,7 +25,8 @@ def register(sub) -> None:
     p.add_argument("--no-images", action="store_true", help="write only the HTML file (images still embedded)")
     add_scheduler_option(p)
     p.add_argument("--group", metavar="KEY", help="for per-group models (fit --by): the group to check, as the "
-                   "model's summary names it (e.g. north-1); the pass reads that group's rows only")
+                   "model's summary names it (e.g. north-1); the pass reads that group's rows only. Without it "
+                   "every group is checked in one pass (up to 50 groups) and the report opens with an overview")
 
 
 def run(args) -> int:
@@ -33,6 +34,7 @@ def run(args) -> int:
     from tallfit.atomic import check_writable
     from tallfit.errors import DesignError
     from tallfit.modelfile import load_model
+    from tallfit.render.group_report import write_group_report
     from tallfit.render.report import write_report
 
     if not 4 <= args.bins <= 200:
@@ -44,9 +46,15 @@ def run(args) -> int:
         found = diagnose(model, source, robust=args.robust, cluster=args.cluster, keep=args.keep,
                          bins=args.bins, batch_rows=args.batch_rows, progress=prog, group=args.group,
                          scheduler=args.scheduler)
-    written = write_report(found["model"], found["diagnostics"], args.out, images=not args.no_images,
-                           data_description=found["source"])
+    if "groups" in found:  # a per-group model without --group: every group, one pass
+        written = write_group_report(found["model"], found["groups"], args.out, images=not args.no_images,
+                                     data_description=found["source"])
+        advice = [(f"{key}: {line}") for key, g in found["groups"].items() for line in g["diagnostics"]["advice"]]
+    else:
+        written = write_report(found["model"], found["diagnostics"], args.out, images=not args.no_images,
+                               data_description=found["source"])
+        advice = found["diagnostics"]["advice"]
     print(f"report written to {args.out}" + (f" (images in {written['images_dir']})" if written.get("images_dir") else ""))
-    for line in found["diagnostics"]["advice"]:
+    for line in advice:
         print(f"  · {line}")
     return 0

@@ -7,7 +7,9 @@ give. Rows of groups without a model (too few rows, aliased) and of a missing ke
 When the groups share one design (no categoricals) and one cluster key at most is asked, every
 group's sandwich sums come from one sweep per block instead (kernels/group_sandwich.py: no call per group
 and block). On a dask cluster each part's group sums are made by a worker and merged in part order.
-Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics check one group at a time
+Memory: O(groups × (terms² + clusters × terms)). Residual diagnostics of every group come from one
+pass too (``grouped_second_pass``: each group's whole second pass, its bin grids from its own first
+rows, a few hundred KB of histograms per group), or of one group by its own pass
 (GroupedFit.group: that group's model with its rows as the filter).
 """
 
@@ -74,13 +76,31 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
             model.warnings.append(f"no robust errors for this group: {exc}")
 
 
-def _routed(source, models: dict, plans: dict, by: list[str], cluster: list[str], batch_rows: int, progress=None):
+def _placed(block, rows, n_read: int):
+    """``block`` with its rows' places among the batch's ``n_read`` rows read (``block.keep``, so
+    the largest residuals are named by their row in the file): ``rows`` are the places of the
+    batch rows the block was made from."""
+    import numpy as np
+
+    used = rows if block.keep is None else rows[np.flatnonzero(block.keep)]
+    keep = np.zeros(n_read, dtype=bool)
+    keep[used] = True
+    block.keep = keep
+    return block
+
+
+def _routed(source, models: dict, plans: dict, by: list[str], cluster: list[str], batch_rows: int, progress=None,
+            keep: Sequence[str] = (), place: bool = False):
     """(group key, design block of that group's rows) for every batch of ``source``: without
     categoricals every group has the same design (one block per batch, split by group); else each
-    group's rows go through its own coding."""
+    group's rows go through its own coding. ``keep``: pass-through columns the blocks also carry;
+    ``place``: each block knows its rows' places in the batch (to name the largest rows)."""
+    import numpy as np
+
     first = next(iter(models.values()))
     spec = first.spec
-    read = list(dict.fromkeys(spec.input_columns + by + cluster))
+    extra = list(dict.fromkeys(list(cluster) + list(keep)))
+    read = list(dict.fromkeys(spec.input_columns + by + extra))
     shared = None if spec.categorical else Design(spec, coding=first.coding)
     designs = {} if shared is not None else {
         k: Design(spec, coding=m.coding, level_codes=plans[k].level_codes) for k, m in models.items()}
@@ -88,19 +108,63 @@ def _routed(source, models: dict, plans: dict, by: list[str], cluster: list[str]
         batch = chunk.batch
         label = chunk_label(source, chunk)
         if shared is not None:
-            whole = shared.block(batch, label, extra_columns=list(dict.fromkeys(by + cluster)))
+            whole = shared.block(batch, label, extra_columns=list(dict.fromkeys(by + extra)))
             whole.file_index, whole.row_start = chunk.file_index, chunk.row_start
+            places = None
+            if place:
+                places = np.flatnonzero(whole.keep) if whole.keep is not None else np.arange(whole.n_read)
             for key, idx in group_rows([whole.extra[c] for c in by]):
                 if key in models:
-                    yield key, whole.subset(idx)
+                    sub = whole.subset(idx)
+                    yield key, (sub if places is None else _placed(sub, places[idx], batch.num_rows))
         else:
             for key, idx in group_rows([batch.column(c) for c in by]):
                 if key in designs:
-                    block = designs[key].block(batch.take(pa.array(idx)), label, extra_columns=cluster)
+                    block = designs[key].block(batch.take(pa.array(idx)), label, extra_columns=extra)
                     block.file_index, block.row_start = chunk.file_index, chunk.row_start
-                    yield key, block
+                    yield key, (_placed(block, idx, batch.num_rows) if place else block)
         if progress is not None:
             progress(batch.num_rows, chunk.file_index)
+
+
+GRID_SAMPLE_BYTES = 128 << 20  # the rows all groups hold for their bin grids (grouped_second_pass)
+MIN_GROUP_SAMPLE = 8192
+
+
+def grouped_second_pass(grouped, data, *, cluster: Sequence[str] = (), keep: Sequence[str] = (),
+                        robust: str | None = "HC3", batch_rows: int = DEFAULT_BATCH_ROWS,
+                        progress: ProgressHook | None = None) -> dict:
+    """Every group's whole second pass (robust sums and residual diagnostics, as
+    engine.second_pass gives one model) from one pass over ``data``, rows routed by group; each
+    group's bin grids come from its own first rows. Memory: a few hundred KB of histograms per
+    group (callers cap the groups). Returns {group key: SecondPass}."""
+    from tallfit.engine.second_pass import SAMPLE_ROWS, TOP_K, GridsFirst
+    from tallfit.solve.robust import check_kind, cluster_keys
+
+    check_kind(robust)
+    cluster = cluster_keys(cluster)
+    models = grouped.groups
+    spec = next(iter(models.values())).spec
+    if spec.absorb:
+        raise DesignError("checking every group at once does not take an absorbed key yet: name one group with --group")
+    source = as_source(data)
+    where = source_label(source)
+    check_design_columns(spec, source.schema, where)
+    for col in list(grouped.by) + cluster + list(keep):
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    plans = {k: PassPlan(m, cluster, keep, True, TOP_K, robust) for k, m in models.items()}
+    # every group holds its first rows until they set its grids: SAMPLE_ROWS each, less when the
+    # groups' held rows would pass GRID_SAMPLE_BYTES in all (the grids are then a little coarser
+    # than a pass over one group's rows would set; the sums in each cell stay exact)
+    width = 8 * (len(spec.numeric_columns) + 2)
+    sample = min(SAMPLE_ROWS, max(MIN_GROUP_SAMPLE, GRID_SAMPLE_BYTES // (width * len(models))))
+    streams = {k: GridsFirst(plans[k], PartSums(plans[k], source), sample) for k in models}
+    blocks = _routed(source, models, plans, list(grouped.by), cluster, batch_rows, progress, keep=keep, place=True)
+    with single_blas_thread():
+        for key, block in prefetched(blocks, depth=2):
+            streams[key].add(block)
+    return {k: s.end().finish() for k, s in streams.items()}
 
 
 def _group_sums(source, models: dict, plans: dict, by: list[str], cluster: list[str], batch_rows: int,

@@ -32,33 +32,48 @@ from tallfit.kernels.lapack_calls import single_blas_thread
 from tallfit.results import FitResult
 from tallfit.solve.robust import check_kind, cluster_keys
 
-__all__ = ["HEAT_CELLS", "SAMPLE_ROWS", "SecondPass", "TOP_K", "second_pass"]
+__all__ = ["HEAT_CELLS", "SAMPLE_ROWS", "GridsFirst", "SecondPass", "TOP_K", "second_pass"]
 
 SAMPLE_ROWS = 131_072
 TOP_K = 10
 
 
+class GridsFirst:
+    """One ordered stream's blocks folded into ``part``, its first blocks held until they set the
+    plan's bin grids (``sample_rows`` used rows, or all of the stream's rows at its end)."""
+
+    def __init__(self, plan: PassPlan, part: PartSums, sample_rows: int = SAMPLE_ROWS) -> None:
+        self.plan, self.part, self.sample_rows = plan, part, sample_rows
+        self.held: list = []
+        self.rows = 0
+
+    def add(self, block) -> None:
+        if self.plan.ready:
+            self.part.fold(block)
+            return
+        self.held.append(block)
+        self.rows += block.n_used
+        if self.rows >= self.sample_rows:
+            self._set(whole=False)
+
+    def _set(self, whole: bool) -> None:
+        self.plan.set_grids(self.held, whole=whole)
+        for b in self.held:
+            self.part.fold(b)
+        self.held = []
+
+    def end(self) -> PartSums:
+        if not self.plan.ready:
+            self._set(whole=True)
+        return self.part
+
+
 def _scan(plan: PassPlan, source, blocks) -> PartSums:
     """One ordered stream into one set of sums; the grids come from its first rows."""
-    part = PartSums(plan, source)
-    held: list = []
-    rows = 0
+    stream = GridsFirst(plan, PartSums(plan, source))
     for block in blocks:
-        if plan.ready:
-            part.fold(block)
-            continue
-        held.append(block)
-        rows += block.n_used
-        if rows >= SAMPLE_ROWS:
-            plan.set_grids(held, whole=False)
-            for b in held:
-                part.fold(b)
-            held = []
-    if not plan.ready:
-        plan.set_grids(held, whole=True)
-    for b in held:
-        part.fold(b)
-    return part
+        stream.add(block)
+    return stream.end()
 
 
 class _Sample:

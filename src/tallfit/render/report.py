@@ -198,16 +198,13 @@ def _cautions(model: FitResult) -> str:
     return '<ul class="caution">' + "".join(f"<li>{i}</li>" for i in items) + "</ul>"
 
 
-def render_html(model: FitResult, diag: dict[str, Any], imgs: dict[str, str], data_description: str = "") -> str:
-    spec = model.spec
+def report_body(model: FitResult, diag: dict[str, Any], imgs: dict[str, str], data_description: str = "",
+                cautions: bool = True) -> list[str]:
+    """The report's sections for one model (HTML fragments, in order)."""
     advice = diag["advice"]
     calm = len(advice) == 1 and advice[0].startswith("no curvature")
     verdict = f'<div class="verdict{" ok" if calm else ""}"><ul>' + "".join(f"<li>{_e(a)}</li>" for a in advice) + "</ul></div>"
     parts = [
-        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
-        f"<title>tallfit report: {_e(spec.target)}</title><style>{CSS}</style></head><body><main>",
-        f"<h1>{_e(spec.target)} explained by {len(model.terms)} terms</h1>",
-        f"<p class='sub'>tallfit report · {_e(model.solver)} · {count(model.inference.n_used)} rows used</p>",
         "<h2>What the checks found</h2>", verdict,
         "<h2>Data</h2>", _data_section(model, diag, data_description),
         "<h2>Accuracy</h2>", _accuracy_section(model, diag),
@@ -217,32 +214,59 @@ def render_html(model: FitResult, diag: dict[str, Any], imgs: dict[str, str], da
         "<h2>Residual distribution</h2>", imgs.get("residual_distribution", ""),
         "<h3>Largest residuals</h3>", _rows_table(diag["top_residuals"]),
         "<h3>Largest leverages</h3>", _rows_table(diag["top_leverage"]),
-        "<h2>Read with care</h2>", _cautions(model),
-        "</main></body></html>",
     ]
-    return "\n".join(parts)
+    if cautions:
+        parts += ["<h2>Read with care</h2>", _cautions(model)]
+    return parts
+
+
+def page(title: str, parts: list[str]) -> str:
+    """A whole self-contained HTML page around the fragments ``parts``."""
+    return "\n".join([
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        f"<title>{_e(title)}</title><style>{CSS}</style></head><body><main>", *parts, "</main></body></html>",
+    ])
+
+
+def render_html(model: FitResult, diag: dict[str, Any], imgs: dict[str, str], data_description: str = "") -> str:
+    head = [f"<h1>{_e(model.spec.target)} explained by {len(model.terms)} terms</h1>",
+            f"<p class='sub'>tallfit report · {_e(model.solver)} · {count(model.inference.n_used)} rows used</p>"]
+    return page(f"tallfit report: {model.spec.target}", head + report_body(model, diag, imgs, data_description))
+
+
+def image_files(out: str | os.PathLike, images: bool) -> tuple[Path, dict[str, Any]]:
+    """The checked HTML path and what ``write_figures`` will write beside it."""
+    target = check_writable(out)
+    written: dict[str, Any] = {"html": str(target), "images": []}
+    folder = target.parent / f"{target.stem}_files"
+    if images:
+        folder.mkdir(exist_ok=True)
+        written["images_dir"] = str(folder)
+    return target, written
+
+
+def write_figures(figs: dict[str, tuple[str, Any]], written: dict[str, Any], prefix: str = "") -> dict[str, str]:
+    """Each figure as an embedded <img> (returned by key) and, when ``written`` has an images
+    folder, as PNG and SVG files in it (named ``prefix`` + key)."""
+    imgs: dict[str, str] = {}
+    folder = Path(written["images_dir"]) if written.get("images_dir") else None
+    for key, (alt, fig) in figs.items():
+        png, svg = _encode(fig)
+        imgs[key] = _img(png, alt)
+        if folder is not None:
+            safe = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in prefix + key)
+            for ext, data in (("png", png), ("svg", svg)):
+                with atomic_path(folder / f"{safe}.{ext}") as tmp:
+                    Path(tmp).write_bytes(data)
+                written["images"].append(str(folder / f"{safe}.{ext}"))
+    return imgs
 
 
 def write_report(model: FitResult, diag: dict[str, Any], out: str | os.PathLike, *, images: bool = True,
                  data_description: str = "") -> dict[str, Any]:
     """Write the HTML file (and PNG + SVG files in ``<stem>_files/`` unless ``images=False``)."""
-    target = check_writable(out)
-    figs = _figures(model, diag)
-    imgs: dict[str, str] = {}
-    folder = target.parent / f"{target.stem}_files"
-    written: dict[str, Any] = {"html": str(target), "images": []}
-    if images:
-        folder.mkdir(exist_ok=True)
-        written["images_dir"] = str(folder)
-    for key, (alt, fig) in figs.items():
-        png, svg = _encode(fig)
-        imgs[key] = _img(png, alt)
-        if images:
-            safe = "".join(ch if ch.isalnum() or ch in "-_" else "_" for ch in key)
-            for ext, data in (("png", png), ("svg", svg)):
-                with atomic_path(folder / f"{safe}.{ext}") as tmp:
-                    Path(tmp).write_bytes(data)
-                written["images"].append(str(folder / f"{safe}.{ext}"))
+    target, written = image_files(out, images)
+    imgs = write_figures(_figures(model, diag), written)
     write_text_atomic(target, render_html(model, diag, imgs, data_description))
     return written
 
