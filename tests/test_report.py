@@ -206,7 +206,7 @@ def test_report_of_every_group_in_one_pass(fleet, tmp_path, capsys):
                  "--batch-rows", "700", "--no-progress"]) == 0
     printed = capsys.readouterr().out
     for key in "abc":
-        assert f"{key}: inlet_temp_c: the straight line misses a bend" in printed
+        assert f"{key}: bends in inlet_temp_c" in printed
     text = out.read_text(encoding="utf-8")
     parser = _Collect()
     parser.feed(text)

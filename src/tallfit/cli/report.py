@@ -34,7 +34,7 @@ def run(args) -> int:
     from tallfit.atomic import check_writable
     from tallfit.errors import DesignError
     from tallfit.modelfile import load_model
-    from tallfit.render.group_report import write_group_report
+    from tallfit.render.group_report import group_findings, write_group_report
     from tallfit.render.report import write_report
 
     if not 4 <= args.bins <= 200:
@@ -49,7 +49,7 @@ def run(args) -> int:
     if "groups" in found:  # a per-group model without --group: every group, one pass
         written = write_group_report(found["model"], found["groups"], args.out, images=not args.no_images,
                                      data_description=found["source"])
-        advice = [(f"{key}: {line}") for key, g in found["groups"].items() for line in g["diagnostics"]["advice"]]
+        advice = group_findings(found["groups"]) + ["each group's advice is in its section of the report"]
     else:
         written = write_report(found["model"], found["diagnostics"], args.out, images=not args.no_images,
                                data_description=found["source"])

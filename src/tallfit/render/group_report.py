@@ -19,10 +19,25 @@ def _anchor(i: int) -> str:
     return f"group-{i}"
 
 
+def _noise_p(checked: dict[str, dict[str, Any]]) -> np.ndarray:
+    """Each group's Breusch–Pagan p-value, Holm-adjusted across the groups (NaN: not tested)."""
+    return holm([(f["diagnostics"]["breusch_pagan"] or {}).get("p_value", np.nan) for f in checked.values()])
+
+
+def group_findings(checked: dict[str, dict[str, Any]], alpha: float = 0.05) -> list[str]:
+    """One short line per group: the features whose line bends and whether the noise is unequal
+    (its Holm-adjusted Breusch–Pagan p-value below ``alpha``)."""
+    lines = []
+    for (key, found), p in zip(checked.items(), _noise_p(checked)):
+        curved = [f["name"] for f in found["diagnostics"]["features"] if f["curvature"].get("curved")]
+        said = ([f"bends in {', '.join(curved)}"] if curved else []) + (["unequal noise"] if p < alpha else [])
+        lines.append(f"{key}: {'; '.join(said) if said else 'no bend or unequal noise found'}")
+    return lines
+
+
 def _overview(checked: dict[str, dict[str, Any]]) -> str:
     keys = list(checked)
-    bp = [(checked[k]["diagnostics"]["breusch_pagan"] or {}).get("p_value", np.nan) for k in keys]
-    adjusted = holm(bp)
+    adjusted = _noise_p(checked)
     rows = []
     for i, (key, adj) in enumerate(zip(keys, adjusted)):
         model, diag = checked[key]["model"], checked[key]["diagnostics"]
