@@ -329,3 +329,32 @@ def test_rows_held_for_every_groups_grids_stay_within_the_budget(tmp_path, monke
     # a group sets its grids once it holds 1,500 rows; its last block (≤ 1,000 rows over 4 groups)
     # can take it past that by less than one block's share
     assert 0 < peak[0] <= 4 * (1500 + 1000)
+
+
+def test_checking_data_without_a_groups_rows_says_so(tmp_path):
+    """Data that lacks one group's rows: checking every group reports that group as not checked,
+    checking only it (or data with no usable row at all) is a clear error, not a traceback."""
+    from tallfit.api import diagnose
+    from tallfit.render.group_report import write_group_report
+
+    rng = np.random.default_rng(5)
+    n = 6000
+    g = rng.choice(["a", "b", "c"], n)
+    x = rng.normal(size=n)
+    y = x + rng.normal(size=n)
+    full, part = tmp_path / "full.parquet", tmp_path / "part.parquet"
+    pq.write_table(pa.table({"g": g, "x": x, "y": y}), full)
+    keep = g != "c"
+    pq.write_table(pa.table({"g": g[keep], "x": x[keep], "y": y[keep]}), part)
+    m = tallfit.fit(full, "y", ["x"], by="g")
+    out = diagnose(m, part)
+    assert set(out["groups"]) == {"a", "b"} and out["unchecked"] == {"c": "no usable rows in this data"}
+    html = tmp_path / "r.html"
+    write_group_report(m, out["groups"], html, images=False, unchecked=out["unchecked"])
+    assert "Not checked: c (no usable rows in this data)" in html.read_text(encoding="utf-8")
+    with pytest.raises(DesignError, match="nothing to check in .*only group 'c'"):
+        diagnose(m, part, group="c")
+    empty = tmp_path / "empty.parquet"
+    pq.write_table(pa.table({"g": ["a"], "x": [np.nan], "y": [1.0]}), empty)
+    with pytest.raises(DesignError, match="no group of this model has a usable row"):
+        diagnose(m, empty)

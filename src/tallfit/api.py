@@ -285,6 +285,12 @@ def diagnose(
         raise DesignError(f"--group {group!r}: this model is one model, not one per group")
     sp = second_pass(model, source, cluster=cluster_list(cluster), keep=list(keep), robust=robust,
                      batch_rows=batch_rows, progress=progress)
+    if sp.n_used == 0:
+        only = f" (only group {group!r}'s rows are read)" if group is not None else ""
+        raise DesignError(
+            f"nothing to check in {source.describe()}: {sp.n_read:,} rows read{only}, none usable by this model "
+            "(rows with a missing value in a model column are dropped); give the data the model was fitted on"
+        )
     if same_data(model, sp):
         model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
     diag = build_diagnostics(model, sp, bins=bins, robust=model.robust)
@@ -311,13 +317,19 @@ def _diagnose_groups(grouped, source, *, robust, cluster, keep, bins, batch_rows
         )
     passes = grouped_second_pass(grouped, source, cluster=cluster, keep=keep, robust=robust, batch_rows=batch_rows,
                                  progress=progress)
-    checked = {}
+    checked, unchecked = {}, {}
     for key, sp in passes.items():
+        if sp.n_used == 0:
+            unchecked[key] = "no usable rows in this data"
+            continue
         model = grouped.groups[key]
         if same_data(model, sp):
             model.robust = robust_for_model(model, sp.sandwich, sp.clusters, robust, swept=sp.levels_used)
         checked[key] = {"model": model, "diagnostics": build_diagnostics(model, sp, bins=bins, robust=model.robust)}
-    return {"model": grouped, "groups": checked, "source": source.describe()}
+    if not checked:
+        raise DesignError(f"nothing to check in {source.describe()}: no group of this model has a usable row there; "
+                          "give the data the model was fitted on")
+    return {"model": grouped, "groups": checked, "unchecked": unchecked, "source": source.describe()}
 
 
 def predict(model: FitResult | str | os.PathLike, data: Any, **kwargs: Any):

@@ -48,8 +48,9 @@ def run(args) -> int:
                          scheduler=args.scheduler)
     if "groups" in found:  # a per-group model without --group: every group, one pass
         written = write_group_report(found["model"], found["groups"], args.out, images=not args.no_images,
-                                     data_description=found["source"])
-        advice = group_findings(found["groups"]) + ["each group's advice is in its section of the report"]
+                                     data_description=found["source"], unchecked=found["unchecked"])
+        advice = group_findings(found["groups"]) + [f"{k}: not checked, {why}" for k, why in found["unchecked"].items()]
+        advice.append("each group's advice is in its section of the report")
     else:
         written = write_report(found["model"], found["diagnostics"], args.out, images=not args.no_images,
                                data_description=found["source"])

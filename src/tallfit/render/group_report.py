@@ -63,13 +63,15 @@ def _overview(checked: dict[str, dict[str, Any]]) -> str:
 
 
 def render_groups_html(grouped, checked: dict[str, dict[str, Any]], imgs: dict[str, dict[str, str]],
-                       data_description: str = "") -> str:
+                       data_description: str = "", unchecked: dict[str, str] | None = None) -> str:
     first = next(iter(checked.values()))["model"]
     parts = [f"<h1>{_e(first.spec.target)} per {_e(' × '.join(grouped.by))}: {len(checked)} models checked</h1>",
              f"<p class='sub'>tallfit report · one pass over {_e(data_description)}</p>",
              "<h2>Groups at a glance</h2>", _overview(checked)]
     if grouped.failed:
         parts.append("<p>Not fitted: " + ", ".join(f"{_e(k)} ({_e(why)})" for k, why in grouped.failed.items()) + "</p>")
+    if unchecked:
+        parts.append("<p>Not checked: " + ", ".join(f"{_e(k)} ({_e(why)})" for k, why in unchecked.items()) + "</p>")
     for i, (key, found) in enumerate(checked.items()):
         parts.append(f'<section id="{_anchor(i)}"><h1>Group {_e(key)}</h1>')
         parts += report_body(found["model"], found["diagnostics"], imgs[key], data_description, cautions=False)
@@ -81,11 +83,11 @@ def render_groups_html(grouped, checked: dict[str, dict[str, Any]], imgs: dict[s
 
 
 def write_group_report(grouped, checked: dict[str, dict[str, Any]], out: str | os.PathLike, *, images: bool = True,
-                       data_description: str = "") -> dict[str, Any]:
+                       data_description: str = "", unchecked: dict[str, str] | None = None) -> dict[str, Any]:
     """Write the HTML file of every checked group (and its images as PNG + SVG files in
     ``<stem>_files/``, each group's named ``group-<i>_…``, unless ``images=False``)."""
     target, written = image_files(out, images)
     imgs = {key: write_figures(_figures(f["model"], f["diagnostics"]), written, prefix=f"{_anchor(i)}_")
             for i, (key, f) in enumerate(checked.items())}
-    write_text_atomic(target, render_groups_html(grouped, checked, imgs, data_description))
+    write_text_atomic(target, render_groups_html(grouped, checked, imgs, data_description, unchecked))
     return written
