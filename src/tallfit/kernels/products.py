@@ -28,6 +28,22 @@ _FAST = {"reassoc", "contract", "nsz", "arcp"}
 WIDE_BLOCKS = "+avx512f" in _llvm.get_host_cpu_features().flatten().split(",")  # 4 × 4 blocks (see above)
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def _add_upper(t, j, k, last, P):  # pragma: no cover - compiled
+    """P[j + u, k + v] += t[u][v] for the entries on or above the diagonal and inside P."""
+    for u in range(len(t)):
+        jj = j + u
+        if jj > last:
+            break
+        row = t[u]
+        for v in range(4):
+            kk = k + v
+            if kk > last:
+                break
+            if kk >= jj:
+                P[jj, kk] += row[v]
+
+
 @numba.njit(cache=True, nogil=True, fastmath=_FAST)
 def _block(A, r0, r1, s, j, k, P):  # pragma: no cover - compiled
     """P[j:j+2, k:k+4] += the products of those (shifted) columns over rows r0..r1-1 (the upper
@@ -56,18 +72,7 @@ def _block(A, r0, r1, s, j, k, P):  # pragma: no cover - compiled
         t11 += x1 * y1
         t12 += x1 * y2
         t13 += x1 * y3
-    t = ((t00, t01, t02, t03), (t10, t11, t12, t13))
-    for u in range(2):
-        jj = j + u
-        if jj > last:
-            break
-        row = t[u]
-        for v in range(4):
-            kk = k + v
-            if kk > last:
-                break
-            if kk >= jj:
-                P[jj, kk] += row[v]
+    _add_upper(((t00, t01, t02, t03), (t10, t11, t12, t13)), j, k, last, P)
 
 
 @numba.njit(cache=True, nogil=True, fastmath=_FAST)
@@ -109,18 +114,8 @@ def _block_wide(A, r0, r1, s, j, k, P):  # pragma: no cover - compiled
         t31 += x3 * y1
         t32 += x3 * y2
         t33 += x3 * y3
-    t = ((t00, t01, t02, t03), (t10, t11, t12, t13), (t20, t21, t22, t23), (t30, t31, t32, t33))
-    for u in range(4):
-        jj = j + u
-        if jj > last:
-            break
-        row = t[u]
-        for v in range(4):
-            kk = k + v
-            if kk > last:
-                break
-            if kk >= jj:
-                P[jj, kk] += row[v]
+    _add_upper(((t00, t01, t02, t03), (t10, t11, t12, t13), (t20, t21, t22, t23), (t30, t31, t32, t33)),
+               j, k, last, P)
 
 
 @numba.njit(cache=True, nogil=True)
