@@ -220,3 +220,45 @@ def test_a_bad_part_while_the_grid_sample_is_gathered_fails_cleanly(tmp_path, fl
     t.join(60)
     assert not t.is_alive(), "the pass hung after a part failed during the grid sample"
     assert len(caught) == 1 and "p0.parquet" in str(caught[0]) and "cpu_util" in str(caught[0])
+
+
+def test_one_sweep_of_fitted_values_and_residuals_equals_the_separate_kernels():
+    """kernels.residual_block_sums gives the bits of the fitted-value bins (grid_bin_sums_rows), the
+    heat map (two grid_index calls, then a count per pair of cells by numpy) and the residual
+    sketch (residual_moments), values beyond every grid included."""
+    from tallfit.diagnostics.kernels import grid_bin_sums_rows, grid_index, residual_block_sums, residual_moments
+
+    rng = np.random.default_rng(21)
+    m = 5000
+    fitted = rng.normal(100, 20, m)
+    e = rng.standard_t(3, m) * 4
+    fitted[:3] = [-1e9, 1e9, 100.0]
+    e[3:6] = [-1e6, 1e6, 0.0]
+    fcells, hcells, rcells = 1024, 64, 4800
+    flo, fscale = 40.0, fcells / 120.0
+    hf, he = (30.0, hcells / 140.0), (-16.0, hcells / 32.0)
+    rlo, rscale = -48.0, rcells / 96.0
+    ref_bins = np.zeros((1, fcells + 2, 4))
+    grid_bin_sums_rows(fitted[:, None], 0, m, np.array([0]), e, np.array([flo]), np.array([fscale]), fcells,
+                       ref_bins, np.empty(m, dtype=np.int32))
+    a, b = np.empty(m, dtype=np.int32), np.empty(m, dtype=np.int32)
+    grid_index(fitted, hf[0], hf[1], hcells, a)
+    grid_index(e, he[0], he[1], hcells, b)
+    ref_heat = np.zeros((hcells + 2, hcells + 2), dtype=np.int64)
+    np.add.at(ref_heat, (a, b), 1)
+    ref_hist = np.zeros(rcells + 2, dtype=np.int64)
+    ref_mom = np.array([0.0, 0.0, 0.0, 0.0, np.inf, -np.inf])
+    residual_moments(e, rlo, rscale, rcells, ref_hist, ref_mom)
+
+    bins = np.zeros((fcells + 2, 4))
+    franges = np.array([np.inf, -np.inf])
+    heat = np.zeros_like(ref_heat)
+    hist = np.zeros_like(ref_hist)
+    mom = np.array([0.0, 0.0, 0.0, 0.0, np.inf, -np.inf])
+    residual_block_sums(fitted, e, np.array([flo, fscale, fcells]), bins, franges,
+                        np.array([hf[0], hf[1], he[0], he[1], hcells]), heat, np.array([rlo, rscale, rcells]), hist, mom)
+    np.testing.assert_array_equal(bins, ref_bins[0])
+    np.testing.assert_array_equal(heat, ref_heat)
+    np.testing.assert_array_equal(hist, ref_hist)
+    np.testing.assert_array_equal(mom, ref_mom)
+    assert tuple(franges) == (fitted.min(), fitted.max())

@@ -23,8 +23,9 @@ import pyarrow as pa
 
 from tallfit.diagnostics.bins import BinnedSums, Grid
 from tallfit.diagnostics.heteroskedasticity import BreuschPaganSums
-from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, gather_add_scaled, grid_counts, grid_index,
-                                         level_tables, tile_scores)
+from tallfit.diagnostics.kernels import (SCORES, SCORES_ALL, gather_add, gather_add_scaled, grid_index, level_tables,
+                                         residual_block_sums, tile_scores)
+from tallfit.diagnostics.residuals import CELLS as RESIDUAL_CELLS
 from tallfit.diagnostics.residuals import ResidualSketch, TopRows
 from tallfit.engine.absorbed_rows import ONE_ROW_LEVEL, AbsorbedRows
 from tallfit.engine.cluster_codes import KeyCoder, PairCoder
@@ -329,19 +330,33 @@ class PartSums:
             A = unscaled(block)  # analytic weights, and is the plain residual for frequency ones
             fitted = plan.fitted_values(block, A)
             out.feature_bins.update(A, e, plan.fcols, ka, w=w)
-        out.fitted_bins.update(fitted[:, None], e, None, ka, w=w)
         ax = out.heat_axes
-        grid_index(fitted, ax["fitted_lo"], ax["fitted_scale"], HEAT_CELLS, ka)
-        grid_index(e, ax["resid_lo"], ax["resid_scale"], HEAT_CELLS, kb)
-        if w is None:
-            grid_counts(ka, kb, out.heat)
+        if w is None:  # one sweep: fitted-value bins, heat map, residual sketch
+            self._residual_sweep(fitted, e)
         else:
+            out.fitted_bins.update(fitted[:, None], e, None, ka, w=w)
+            grid_index(fitted, ax["fitted_lo"], ax["fitted_scale"], HEAT_CELLS, ka)
+            grid_index(e, ax["resid_lo"], ax["resid_scale"], HEAT_CELLS, kb)
             out.heat = out.heat + np.bincount(ka * (HEAT_CELLS + 2) + kb, weights=w,
                                               minlength=(HEAT_CELLS + 2) ** 2).reshape(out.heat.shape)
-        out.residuals.update(e, w)
+            out.residuals.update(e, w)
         detail = self._detail(block, e, fitted, h)
         out.top_residuals.update(np.abs(e), detail)
         out.top_leverage.update(h, detail)
+
+    def _residual_sweep(self, fitted: np.ndarray, e: np.ndarray) -> None:
+        """kernels.residual_block_sums into the fitted-value bins, the heat map and the residual
+        sketch (the unweighted pass; each has its own update for weighted rows)."""
+        out = self.out
+        fb, res, ax = out.fitted_bins, out.residuals, out.heat_axes
+        g = fb.grid
+        franges = np.array([fb.lo_seen[0], fb.hi_seen[0]])
+        residual_block_sums(fitted, e, np.array([g.lo[0], g.scale[0], g.cells]), fb.sums[0], franges,
+                            np.array([ax["fitted_lo"], ax["fitted_scale"], ax["resid_lo"], ax["resid_scale"],
+                                      HEAT_CELLS]), out.heat,
+                            np.array([res.lo, 1.0 / res.width, RESIDUAL_CELLS]), res.hist, res.sums)
+        fb.lo_seen[0], fb.hi_seen[0] = franges
+        res.n += len(e)
 
     def _detail(self, block, e, fitted, h):
         files = getattr(self.source, "files", [])
