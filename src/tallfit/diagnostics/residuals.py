@@ -148,6 +148,8 @@ class TopRows:
         if self.k <= 0 or score.size == 0:
             return
         floor = self.values.min() if len(self.values) >= self.k else -np.inf
+        if score.max() <= floor:  # the common case once k rows are in: one reduction, no mask
+            return
         candidates = np.flatnonzero(score > floor)
         if candidates.size == 0:
             return
