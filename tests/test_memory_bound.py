@@ -29,6 +29,11 @@ mode = sys.argv[2]
 if mode in ("qr", "gram"):
     r = tallfit.fit(sys.argv[1], "power_w", feats, method=mode, batch_rows=32768)
     assert r.accumulator.n_used == int(sys.argv[3]), r.accumulator.n_used
+elif mode == "groups-pass":  # one model per region, then every region checked in one pass
+    from tallfit.api import diagnose
+    r = tallfit.fit(sys.argv[1], "power_w", feats, by="region", batch_rows=32768)
+    out = diagnose(r, sys.argv[1], cluster="host_id", batch_rows=32768)
+    assert sum(g["diagnostics"]["n_used"] for g in out["groups"].values()) == int(sys.argv[3])
 else:  # a fit, then the second pass with every diagnostic (and the host key absorbed)
     from tallfit.api import diagnose
     absorb = "host_id" if mode == "absorbed-pass" else None
@@ -69,10 +74,12 @@ def test_peak_rss_does_not_grow_with_rows(two_sizes, method="qr"):
     assert big < 1024 * 1024  # below 1 GB
 
 
-@pytest.mark.parametrize("mode", ["pass", "absorbed-pass"])
+@pytest.mark.parametrize("mode", ["pass", "absorbed-pass", "groups-pass"])
 def test_second_pass_peak_rss_does_not_grow_with_rows(two_sizes, mode):
     """Robust, clustered and diagnostic sums are bounded: O(clusters × terms), fixed grids, top-k
-    rows, and for an absorbed key O(levels × terms), none of them O(rows)."""
+    rows, for an absorbed key O(levels × terms), and for every group of a per-group model checked
+    at once the groups' sums and the rows they hold for their grids (a fixed share), none of
+    them O(rows)."""
     small = _peak_kb(two_sizes[200_000], mode, 200_000)
     big = _peak_kb(two_sizes[2_000_000], mode, 2_000_000)
     assert big <= small + GROWTH_KB, f"peak RSS grew from {small / 1024:.0f} MB to {big / 1024:.0f} MB"

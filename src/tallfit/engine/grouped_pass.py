@@ -154,11 +154,14 @@ def grouped_second_pass(grouped, data, *, cluster: Sequence[str] = (), keep: Seq
         if col not in source.schema.names:
             raise ColumnNotFoundError(col, source.schema.names, where=where)
     plans = {k: PassPlan(m, cluster, keep, True, TOP_K, robust) for k, m in models.items()}
-    # every group holds its first rows until they set its grids: SAMPLE_ROWS each, less when the
-    # groups' held rows would pass GRID_SAMPLE_BYTES in all (the grids are then a little coarser
-    # than a pass over one group's rows would set; the sums in each cell stay exact)
+    # every group holds its first rows until they set its grids: SAMPLE_ROWS shared among the
+    # groups (MIN_GROUP_SAMPLE at least, and less again when the held rows would pass
+    # GRID_SAMPLE_BYTES in all), so the rows held do not grow with the data; a group's grid is
+    # then set from fewer rows than a pass over that group alone takes (the sums in each cell
+    # stay exact; the cells' edges differ)
     width = 8 * (len(spec.numeric_columns) + 2)
-    sample = min(SAMPLE_ROWS, max(MIN_GROUP_SAMPLE, GRID_SAMPLE_BYTES // (width * len(models))))
+    share = max(MIN_GROUP_SAMPLE, SAMPLE_ROWS // len(models))
+    sample = min(share, max(MIN_GROUP_SAMPLE // 8, GRID_SAMPLE_BYTES // (width * len(models))))
     streams = {k: GridsFirst(plans[k], PartSums(plans[k], source), sample) for k in models}
     blocks = _routed(source, models, plans, list(grouped.by), cluster, batch_rows, progress, keep=keep, place=True)
     with single_blas_thread():
