@@ -224,6 +224,16 @@ def test_per_group_robust_errors_on_the_cluster(client, tmp_path):
         np.testing.assert_allclose(cl.groups[key].robust["estimators"]["cluster:firm"]["std_error"], ref.bse,
                                    rtol=1e-9)
         assert hc3.groups[key].options["cluster"]["passes"] == 2
+    # checking every group at once reads here and says so; its numbers are the local ones
+    from tallfit.api import diagnose
+
+    there = diagnose(hc3, data, scheduler=client)
+    here = diagnose(tallfit.fit(data, "invest", ["value", "capital"], by="era"), data)
+    for key in ("early", "late"):
+        m = there["groups"][key]["model"]
+        assert any("checking every group at once reads the data here" in w for w in m.warnings)
+        np.testing.assert_allclose(m.robust["estimators"]["HC3"]["std_error"],
+                                   here["groups"][key]["model"].robust["estimators"]["HC3"]["std_error"], rtol=1e-12)
 
 
 def test_a_file_the_workers_cannot_open_is_named(client, tmp_path):

@@ -231,9 +231,9 @@ def _on_cluster(fn, kwargs: dict):
     for m in models:
         m.options["cluster"] = {"scheduler": run.address, "passes": run.passes, "parts": run.parts}
         if run.parts == 0:
-            m.warnings.append(
-                f"nothing ran on the cluster at {run.address}: the data is one part or not in files, "
-                "so it was read here (give the workers files or URIs they can reach)")
+            why = run.kept_here or ("the data is one part or not in files, so it was read here (give the "
+                                    "workers files or URIs they can reach)")
+            m.warnings.append(f"nothing ran on the cluster at {run.address}: {why}")
     return out
 
 
@@ -315,6 +315,12 @@ def _diagnose_groups(grouped, source, *, robust, cluster, keep, bins, batch_rows
             f"this model has one model per {', '.join(grouped.by)} ({len(grouped.groups)} groups, more than the "
             f"{REPORT_GROUPS} one report checks at once): name the group to check with --group (group=), one of {shown}"
         )
+    from tallfit.engine.cluster import current
+
+    run = current()
+    if run is not None:
+        run.kept_here = ("checking every group at once reads the data here; name one group (--group) to "
+                         "check it on the cluster")
     passes = grouped_second_pass(grouped, source, cluster=cluster, keep=keep, robust=robust, batch_rows=batch_rows,
                                  progress=progress)
     checked, unchecked = {}, {}

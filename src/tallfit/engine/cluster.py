@@ -39,6 +39,7 @@ class ClusterRun:
         self.address = address
         self.parts = 0
         self.passes = 0
+        self.kept_here: str | None = None  # why a pass ran on this machine instead (for the result's note)
 
     def map_merge(self, fn: Callable, parts: Sequence, merge: Callable[[Any, Any], Any], shape: str,
                   progress=None, places: Sequence | None = None, **kwargs) -> Any:
