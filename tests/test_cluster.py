@@ -259,3 +259,25 @@ def test_a_file_the_workers_cannot_open_is_named(client, tmp_path):
             tallfit.fit(str(tmp_path / "*.parquet"), "power_w", FEATS, scheduler=client)
     finally:
         passes.source_parts = real
+
+
+def test_refinement_passes_on_the_cluster(client, tmp_path):
+    """fit --refine on the cluster: each refinement pass's double-double residual products are made
+    per part on the workers and merged in part order; the refined fit equals the local one to the
+    last digits and statsmodels OLS on grunfeld (statsmodels ships it), and every pass ran there."""
+    sm, d, table = _grunfeld_in_four_files(tmp_path)
+    data = str(tmp_path / "*.parquet")
+    there = tallfit.fit(data, "invest", ["value", "capital"], refine=2, scheduler=client)
+    here = tallfit.fit(data, "invest", ["value", "capital"], refine=2)
+    assert there.solver == here.solver == "householder-tsqr+refinement"
+    np.testing.assert_allclose(there.inference.estimate, here.inference.estimate, rtol=1e-14)
+    ref = sm.OLS(d.invest.to_numpy(float), sm.add_constant(d[["value", "capital"]].to_numpy(float))).fit()
+    np.testing.assert_allclose(there.inference.estimate, ref.params, rtol=1e-10)
+    assert there.options["cluster"]["passes"] == 3 and there.options["cluster"]["parts"] == 3 * 4  # parts of every pass
+
+
+def test_an_iterative_solver_with_a_cluster_says_where_its_passes_ran(client, tmp_path):
+    sm, d, table = _grunfeld_in_four_files(tmp_path)
+    r = tallfit.fit(str(tmp_path / "*.parquet"), "invest", ["value", "capital"], solver="cg", scheduler=client)
+    assert any("passes read the data here, not on the cluster" in w for w in r.warnings)
+    assert r.options["cluster"]["passes"] == 1  # the factor pass

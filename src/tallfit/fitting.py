@@ -126,4 +126,9 @@ def fit_iterative(source, spec, acc, common, notes, solver, solver_options, batc
         result = fit_iterative(spec, acc, passes, solver, opts, **common)
     result.iterations["cache"] = passes.cache_info  # after close: where it was, its size, "removed"
     result.warnings.extend(notes)
+    from tallfit.engine.cluster import current
+
+    if current() is not None:
+        result.warnings.append(f"the {solver} solver's {passes.passes} passes read the data here, not on the cluster "
+                               "(only the factor pass ran there)")
     return result

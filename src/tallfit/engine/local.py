@@ -207,15 +207,49 @@ def residual_products_pass(
     progress: ProgressHook | None = None,
     coding: dict | None = None,
 ) -> tuple[np.ndarray, float]:
-    """One pass: Xᵀ(y − Xb) and ‖y − Xb‖², accumulated in double-double over the used rows."""
+    """One pass: Xᵀ(y − Xb) and ‖y − Xb‖², accumulated in double-double over the used rows. On a
+    dask cluster (engine.cluster) each part's sums are made by a worker and merged in part order
+    in double-double (kernels.compensated.dd_add)."""
+    from tallfit.engine.cluster import current
+    from tallfit.engine.parallel import source_parts
+
+    run = current()
+    parts = source_parts(source) if run is not None else None
+    if parts is not None:
+        g_hi, g_lo, ss = run.map_merge(residual_products_part, [sub for sub, _ in parts], _merge_products, "chain",
+                                       progress=progress, places=parts, spec=spec, keep=list(keep), b_hi=b_hi,
+                                       b_lo=b_lo, batch_rows=batch_rows, coding=coding)
+    else:
+        g_hi, g_lo, ss = _residual_products(design_blocks(source, spec, batch_rows, progress, coding=coding),
+                                            len(keep), keep, b_hi, b_lo)
+    return g_hi + g_lo, float(ss[0] + ss[1])
+
+
+def _residual_products(blocks, p: int, keep, b_hi, b_lo) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     from tallfit.kernels.compensated import accumulate_residual_products
 
-    p = len(keep)
     g_hi, g_lo, ss = np.zeros(p), np.zeros(p), np.zeros(2)
-    for block in design_blocks(source, spec, batch_rows, progress, coding=coding):
+    for block in blocks:
         if block.n_used == 0:
             continue
         X = np.asfortranarray(block.A[:, keep])
         y = np.ascontiguousarray(block.A[:, -1])
         accumulate_residual_products(X, y, b_hi, b_lo, g_hi, g_lo, ss)
-    return g_hi + g_lo, float(ss[0] + ss[1])
+    return g_hi, g_lo, ss
+
+
+def residual_products_part(sub, spec: ModelSpec, keep: list[int], b_hi, b_lo, batch_rows: int, coding=None):
+    """One part's double-double sums (g_hi, g_lo, ss) of ``residual_products_pass``, for a cluster worker."""
+    from tallfit.engine.cluster import PART_READERS
+    from tallfit.engine.parallel import read_part
+
+    blocks = design_blocks(sub, spec, batch_rows, coding=coding, prefetch=read_part(sub, PART_READERS))
+    return _residual_products(blocks, len(keep), keep, b_hi, b_lo)
+
+
+def _merge_products(a, b):
+    from tallfit.kernels.compensated import dd_add
+
+    g_hi, g_lo = dd_add(a[0], a[1], b[0], b[1])
+    s_hi, s_lo = dd_add(a[2][:1], a[2][1:], b[2][:1], b[2][1:])
+    return g_hi, g_lo, np.concatenate([s_hi, s_lo])

@@ -177,6 +177,18 @@ def residual_products(X, y, b_hi, b_lo=None):
     return (g_hi, g_lo), (float(ss[0]), float(ss[1]))
 
 
+def dd_add(a_hi, a_lo, b_hi, b_lo) -> tuple[np.ndarray, np.ndarray]:
+    """(a_hi + a_lo) + (b_hi + b_lo) in double-double, elementwise (TwoSum of the high parts, the
+    low parts and its error added, then renormalised): how the sums of two parts of the data merge."""
+    a_hi, a_lo, b_hi, b_lo = (np.asarray(v, dtype=np.float64) for v in (a_hi, a_lo, b_hi, b_lo))
+    s = a_hi + b_hi
+    bb = s - a_hi
+    err = (a_hi - (s - bb)) + (b_hi - bb)
+    lo = err + (a_lo + b_lo)
+    hi = s + lo
+    return hi, lo - (hi - s)
+
+
 def dd_to_float(hi, lo):
     """Round a double-double (scalars or arrays) to the nearest float64: ``fl(hi + lo)``."""
     return np.add(hi, lo)
