@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 
 from tallfit.kernels.compensated import (
     accumulate_residual_products,
+    dd_add,
     dd_to_float,
     residual_products,
     residual_products_reference,
@@ -260,3 +261,35 @@ def test_bad_arguments_are_rejected():
         accumulate_residual_products(X, y, b, b, np.zeros(2), np.zeros(2), np.zeros(3))
     with pytest.raises(TypeError):
         residual_products(X.astype(np.int64), y, b)
+
+
+@settings(max_examples=300, deadline=None)
+@given(_doubles(-900, 900), _doubles(-900, 900), _doubles(-900, 900), _doubles(-900, 900))
+def test_dd_add_keeps_the_exact_sum_to_double_double_precision(a, b, c, d):
+    """Two double-double values (each normalised first) add to within a few units of 2⁻¹⁰⁶ of the
+    larger's magnitude, and come out normalised; the exact sum by fractions.Fraction."""
+    a_hi, a_lo = two_sum(a, b * 2.0**-60)
+    b_hi, b_lo = two_sum(c, d * 2.0**-60)
+    hi, lo = dd_add(a_hi, a_lo, b_hi, b_lo)
+    exact = Fraction(a_hi) + Fraction(a_lo) + Fraction(b_hi) + Fraction(b_lo)
+    got = Fraction(float(hi)) + Fraction(float(lo))
+    scale = max(abs(a_hi), abs(b_hi), 2.0**-900)
+    assert abs(float(got - exact)) <= 4 * U * U * scale
+    assert float(hi) == float(hi) + float(lo)  # normalised: hi is the rounded sum
+
+
+def test_merging_parts_in_double_double_equals_one_stream():
+    """The sums of two parts of the rows merged by dd_add (as the cluster's refinement pass does)
+    agree with one stream over all the rows to double-double precision."""
+    rng = np.random.default_rng(9)
+    X, y, b_hi, b_lo = _random_problem(rng, 400, 5, noise=1e-9)
+    (g_hi, g_lo), (s_hi, s_lo) = residual_products(X, y, b_hi, b_lo)
+    (a_hi, a_lo), (sa_hi, sa_lo) = residual_products(X[:170], y[:170], b_hi, b_lo)
+    (c_hi, c_lo), (sc_hi, sc_lo) = residual_products(X[170:], y[170:], b_hi, b_lo)
+    m_hi, m_lo = dd_add(a_hi, a_lo, c_hi, c_lo)
+    g_bound, ss_bound = _bounds(X, y, b_hi)
+    for j in range(5):
+        diff = abs(float(Fraction(m_hi[j]) + Fraction(m_lo[j]) - Fraction(g_hi[j]) - Fraction(g_lo[j])))
+        assert diff <= 2 * g_bound[j]
+    ms_hi, ms_lo = dd_add(sa_hi, sa_lo, sc_hi, sc_lo)
+    assert abs(float(Fraction(float(ms_hi)) + Fraction(float(ms_lo)) - Fraction(s_hi) - Fraction(s_lo))) <= 2 * ss_bound
