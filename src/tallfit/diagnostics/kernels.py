@@ -149,28 +149,27 @@ def gather_add_scaled(codes, r0, T, W, scale):  # pragma: no cover - compiled
 @numba.njit(cache=True, nogil=True)
 def residual_moments(e, lo, scale, cells, hist, sums):
     """sums += (Σ|e|, Σe², Σe³, Σe⁴), sums[4] / sums[5] keep the min / max; hist += cell counts."""
-    a1 = 0.0
-    a2 = 0.0
-    a3 = 0.0
-    a4 = 0.0
-    mn = sums[4]
-    mx = sums[5]
+    m = (0.0, 0.0, 0.0, 0.0, sums[4], sums[5])
     for i in range(e.shape[0]):
         r = e[i]
-        r2 = r * r
-        a1 += abs(r)
-        a2 += r2
-        a3 += r2 * r
-        a4 += r2 * r2
-        mn = min(mn, r)
-        mx = max(mx, r)
+        m = _moment_step(m, r)
         hist[_cell(r, lo, scale, cells)] += 1
-    sums[0] += a1
-    sums[1] += a2
-    sums[2] += a3
-    sums[3] += a4
-    sums[4] = mn
-    sums[5] = mx
+    _moments_into(m, sums)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _moment_step(m, r):
+    """(Σ|e|, Σe², Σe³, Σe⁴, min, max) with one more residual r."""
+    r2 = r * r
+    return m[0] + abs(r), m[1] + r2, m[2] + r2 * r, m[3] + r2 * r2, min(m[4], r), max(m[5], r)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _moments_into(m, sums):
+    for j in range(4):
+        sums[j] += m[j]
+    sums[4] = m[4]
+    sums[5] = m[5]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -190,12 +189,7 @@ def residual_block_sums(fitted, e, fgrid, ftab, franges, heat_grid, heat, rgrid,
     hflo, hfscale, helo, hescale, hcells = heat_grid[0], heat_grid[1], heat_grid[2], heat_grid[3], np.int64(heat_grid[4])
     rlo, rscale, rcells = rgrid[0], rgrid[1], np.int64(rgrid[2])
     fmin, fmax = franges[0], franges[1]
-    a1 = 0.0
-    a2 = 0.0
-    a3 = 0.0
-    a4 = 0.0
-    mn = moments[4]
-    mx = moments[5]
+    m = (0.0, 0.0, 0.0, 0.0, moments[4], moments[5])
     for i in range(e.shape[0]):
         f = fitted[i]
         r = e[i]
@@ -203,22 +197,11 @@ def residual_block_sums(fitted, e, fgrid, ftab, franges, heat_grid, heat, rgrid,
         fmin = min(fmin, f)
         fmax = max(fmax, f)
         heat[_cell(f, hflo, hfscale, hcells), _cell(r, helo, hescale, hcells)] += 1
-        r2 = r * r
-        a1 += abs(r)
-        a2 += r2
-        a3 += r2 * r
-        a4 += r2 * r2
-        mn = min(mn, r)
-        mx = max(mx, r)
+        m = _moment_step(m, r)
         hist[_cell(r, rlo, rscale, rcells)] += 1
     franges[0] = fmin
     franges[1] = fmax
-    moments[0] += a1
-    moments[1] += a2
-    moments[2] += a3
-    moments[3] += a4
-    moments[4] = mn
-    moments[5] = mx
+    _moments_into(m, moments)
 
 
 # Sandwich rows per data row (solve.robust.SandwichSums.mode): the rows V whose Gram V'V is summed.
