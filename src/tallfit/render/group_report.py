@@ -19,6 +19,11 @@ def _anchor(i: int) -> str:
     return f"group-{i}"
 
 
+def _curved(diag: dict[str, Any]) -> list[str]:
+    """The features whose binned residuals bend away from the line."""
+    return [f["name"] for f in diag["features"] if f["curvature"].get("curved")]
+
+
 def _noise_p(checked: dict[str, dict[str, Any]]) -> np.ndarray:
     """Each group's Breusch–Pagan p-value, Holm-adjusted across the groups (NaN: not tested)."""
     return holm([(f["diagnostics"]["breusch_pagan"] or {}).get("p_value", np.nan) for f in checked.values()])
@@ -29,7 +34,7 @@ def group_findings(checked: dict[str, dict[str, Any]], alpha: float = 0.05) -> l
     (its Holm-adjusted Breusch–Pagan p-value below ``alpha``)."""
     lines = []
     for (key, found), p in zip(checked.items(), _noise_p(checked)):
-        curved = [f["name"] for f in found["diagnostics"]["features"] if f["curvature"].get("curved")]
+        curved = _curved(found["diagnostics"])
         said = ([f"bends in {', '.join(curved)}"] if curved else []) + (["unequal noise"] if p < alpha else [])
         lines.append(f"{key}: {'; '.join(said) if said else 'no bend or unequal noise found'}")
     return lines
@@ -42,7 +47,7 @@ def _overview(checked: dict[str, dict[str, Any]]) -> str:
     for i, (key, adj) in enumerate(zip(keys, adjusted)):
         model, diag = checked[key]["model"], checked[key]["diagnostics"]
         inf = model.inference
-        curved = [f["name"] for f in diag["features"] if f["curvature"].get("curved")]
+        curved = _curved(diag)
         ratio = "—"
         if model.robust:
             est = model.robust["estimators"][model.robust["selected"]]["std_error"]
