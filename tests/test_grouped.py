@@ -358,3 +358,27 @@ def test_checking_data_without_a_groups_rows_says_so(tmp_path):
     pq.write_table(pa.table({"g": ["a"], "x": [np.nan], "y": [1.0]}), empty)
     with pytest.raises(DesignError, match="no group of this model has a usable row"):
         diagnose(m, empty)
+
+
+@pytest.mark.parametrize("kind", ["analytic", "frequency"])
+def test_every_group_checked_at_once_with_weights_equals_each_alone(tmp_path, kind):
+    """Weighted per-group models: one pass over every group gives each group the robust errors,
+    Breusch–Pagan test and largest rows of checking it alone (each checked against statsmodels
+    in the tests of the weighted second pass)."""
+    from tallfit.api import diagnose
+
+    rng = np.random.default_rng(17)
+    n = 6000
+    g = rng.choice(["a", "b", "c"], n)
+    x = rng.normal(size=n)
+    path = tmp_path / "w.parquet"
+    pq.write_table(pa.table({"g": g, "x": x, "y": x + rng.normal(size=n) * (1 + np.abs(x)),
+                             "w": rng.integers(1, 4, n).astype(float)}), path, row_group_size=1500)
+    m = tallfit.fit(path, "y", ["x"], by="g", weights="w", weight_kind=kind)
+    every = diagnose(m, path, batch_rows=1000)
+    for key in "abc":
+        alone = diagnose(m, path, group=key, batch_rows=1000)
+        np.testing.assert_allclose(every["groups"][key]["model"].robust["estimators"]["HC3"]["std_error"],
+                                   alone["model"].robust["estimators"]["HC3"]["std_error"], rtol=1e-12)
+        assert every["groups"][key]["diagnostics"]["breusch_pagan"] == alone["diagnostics"]["breusch_pagan"]
+        assert every["groups"][key]["diagnostics"]["top_residuals"] == alone["diagnostics"]["top_residuals"]
