@@ -44,8 +44,11 @@ class DesignBlock:
         """A block of the used rows ``idx`` only (their matrix rows, extra columns, codes and
         weights; ranges and the row mask left for the caller), from the same batch."""
         take = pa.array(idx)
+        A = np.empty((idx.size, self.A.shape[1]), order="F")
+        for j in range(A.shape[1]):  # column by column into Fortran order: one copy (A[idx] is C order)
+            np.take(self.A[:, j], idx, out=A[:, j])
         return DesignBlock(
-            A=np.asfortranarray(self.A[idx]), n_read=int(idx.size), extra={k: v.take(take) for k, v in self.extra.items()},
+            A=A, n_read=int(idx.size), extra={k: v.take(take) for k, v in self.extra.items()},
             file_index=self.file_index, row_start=self.row_start, names=self.names,
             row_weights=None if self.row_weights is None else self.row_weights[idx],
             codes=None if self.codes is None else [c[idx] for c in self.codes], level_sizes=self.level_sizes,
