@@ -43,12 +43,7 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
     models = grouped.groups
     first = next(iter(models.values()))
     spec = first.spec
-    source = as_source(data)
-    where = source_label(source)
-    check_design_columns(spec, source.schema, where)
-    for col in list(grouped.by) + cluster:
-        if col not in source.schema.names:
-            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    source = _checked_source(grouped, data, cluster)
     plans = {k: PassPlan(m, cluster, (), False, 0, robust) for k, m in models.items()}
     by = list(grouped.by)
     run = current()
@@ -74,6 +69,17 @@ def grouped_robust(grouped, data, *, robust: str | None, cluster: Sequence[str] 
         except DesignError as exc:  # one group's problem (too few clusters, say) is that group's
             model.robust = None
             model.warnings.append(f"no robust errors for this group: {exc}")
+
+
+def _checked_source(grouped, data, extra: list[str]):
+    """``data`` as a source holding the models' columns, the grouping columns and ``extra``."""
+    source = as_source(data)
+    where = source_label(source)
+    check_design_columns(next(iter(grouped.groups.values())).spec, source.schema, where)
+    for col in list(grouped.by) + list(extra):
+        if col not in source.schema.names:
+            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    return source
 
 
 def _placed(block, rows, n_read: int):
@@ -158,12 +164,7 @@ def grouped_second_pass(grouped, data, *, cluster: Sequence[str] = (), keep: Seq
     spec = next(iter(models.values())).spec
     if spec.absorb:
         raise DesignError("checking every group at once does not take an absorbed key yet: name one group with --group")
-    source = as_source(data)
-    where = source_label(source)
-    check_design_columns(spec, source.schema, where)
-    for col in list(grouped.by) + cluster + list(keep):
-        if col not in source.schema.names:
-            raise ColumnNotFoundError(col, source.schema.names, where=where)
+    source = _checked_source(grouped, data, cluster + list(keep))
     plans = {k: PassPlan(m, cluster, keep, True, TOP_K, robust) for k, m in models.items()}
     # every group holds its first rows until they set its grids: SAMPLE_ROWS shared among the
     # groups (MIN_GROUP_SAMPLE at least, and less again when the held rows would pass
